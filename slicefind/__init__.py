@@ -1,0 +1,23 @@
+"""slicefind: find where a model errs, test it against chance, and tally a human review.
+
+The public API is re-exported here; heavy libraries (umap, hdbscan, numba, mlxtend,
+scikit-learn) are imported only by the functions that need them.
+"""
+from importlib.metadata import PackageNotFoundError, version
+
+from slicefind.slices import FoundSlices, find_slices
+from slicefind.table import SlicefindError, SlicefindTypeError, SlicefindValueError
+
+try:
+    __version__ = version("slicefind")
+except PackageNotFoundError:  # running from a source tree that was not installed
+    __version__ = "0+unknown"
+
+__all__ = [
+    "find_slices",
+    "FoundSlices",
+    "SlicefindError",
+    "SlicefindValueError",
+    "SlicefindTypeError",
+    "__version__",
+]

@@ -1,0 +1,267 @@
+"""Metadata columns -> boolean items, packed as bitsets over all rows and over error rows.
+
+An item is one condition on one column: ``scanner = S3``, ``scanner is rare (4 values)``,
+``glare is missing``, ``belt_speed >= 2.1``, ``0.5 <= exposure < 0.8``,
+``hour of scanned_at = 14``. Numeric cut points come from quantiles and from a shallow
+decision tree fitted on the error flag of that column alone, so a threshold lands where
+the error rate actually changes; every cut is then moved to the shortest decimal that
+splits the data in exactly the same place, which keeps descriptions readable.
+"""
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from slicefind import bitset
+from slicefind.table import CATEGORICAL, DATETIME, NUMERIC, EvalTable
+
+__all__ = ["Item", "ItemSet", "build_items", "readable_cut", "WEEKDAYS"]
+
+WEEKDAYS = ("Mon", "Tue", "Wed", "Thu", "Fri", "Sat", "Sun")
+#: rows the per-column decision tree is fitted on at most (cut points only need a sample)
+TREE_SAMPLE = 200_000
+
+
+@dataclass(frozen=True)
+class Item:
+    """One boolean condition on one column.
+
+    ``op`` is one of ``"="``, ``"rare"`` (one of the values too rare to stand alone),
+    ``"missing"``, ``">="``, ``"<"``, ``"range"`` (``low <= x < high``), and for
+    datetime columns ``"hour"`` and ``"weekday"``.
+    """
+
+    column: str
+    op: str
+    value: Any
+    text: str
+
+    def __str__(self):
+        return self.text
+
+
+@dataclass(frozen=True, repr=False)
+class ItemSet:
+    """Items of one eval table with their packed bitsets."""
+
+    items: tuple[Item, ...]
+    column_of: np.ndarray   # (m,) int: index of each item's column in `columns`
+    columns: tuple[str, ...]
+    bits: np.ndarray        # (m, W) uint64 over all rows
+    error_bits: np.ndarray  # (m, W_err) uint64 over error rows only
+    n_rows: np.ndarray      # (m,) rows per item
+    n_errors: np.ndarray    # (m,) errors per item
+
+    def __len__(self):
+        return len(self.items)
+
+    def __repr__(self):
+        return f"ItemSet(n_items={len(self.items)}, n_columns={len(self.columns)})"
+
+
+def _format_value(value) -> str:
+    """Readable text of one categorical value."""
+    if isinstance(value, (float, np.floating)) and float(value).is_integer():
+        return str(int(value))
+    return str(value)
+
+
+def readable_cut(low: float, high: float) -> float:
+    """The shortest decimal ``r`` with ``low < r <= high``.
+
+    ``x >= r`` then selects exactly the values ``>= high`` when no value lies strictly
+    between ``low`` and ``high``: the split is unchanged, only its text is shorter.
+
+    Examples
+    --------
+    >>> readable_cut(2.0834, 2.1172)
+    2.1
+    >>> readable_cut(99.0, 150.0)
+    100.0
+    >>> readable_cut(-0.31, -0.29)
+    -0.3
+    """
+    if not low < high:
+        return float(high)
+    span = max(abs(low), abs(high), 1e-300)
+    for exponent in range(math.floor(math.log10(span)) + 1, -16, -1):   # coarse to fine
+        step = 10.0 ** exponent
+        candidate = math.floor(high / step) * step
+        if candidate > high:            # float noise in the division
+            candidate -= step
+        if candidate > low:
+            cleaned = round(candidate, max(0, -exponent))
+            return float(cleaned if low < cleaned <= high else candidate)
+    return float(high)
+
+
+def _fmt(x: float) -> str:
+    """Shortest text of a float cut point."""
+    text = f"{x:.12g}"
+    return text
+
+
+class _Builder:
+    """Collects item masks and packs them in blocks (both all-row and error-row bitsets)."""
+
+    def __init__(self, errors: np.ndarray, min_rows: int, min_errors: int):
+        self.errors = errors
+        self.min_rows = min_rows
+        self.min_errors = min_errors
+        self.items: list[Item] = []
+        self.cols: list[int] = []
+        self.masks: list[np.ndarray] = []
+        self.seen: dict[tuple[int, int, int], list[int]] = {}
+        self.bits: list[np.ndarray] = []
+        self.error_bits: list[np.ndarray] = []
+        self.n_rows: list[int] = []
+        self.n_errors: list[int] = []
+
+    def add(self, item: Item, column_index: int, mask: np.ndarray) -> None:
+        n_rows = int(mask.sum())
+        if n_rows < self.min_rows or n_rows == mask.size:
+            return
+        n_errors = int(np.count_nonzero(mask & self.errors))
+        if n_errors < self.min_errors:
+            return
+        packed = bitset.pack(mask)[0]
+        key = (column_index, n_rows, n_errors)
+        for j in self.seen.get(key, []):       # identical rows: keep the first (simplest) text
+            if np.array_equal(self.bits[j], packed):
+                return
+        self.seen.setdefault(key, []).append(len(self.items))
+        self.items.append(item)
+        self.cols.append(column_index)
+        self.bits.append(packed)
+        self.error_bits.append(bitset.pack(mask[self.errors])[0])
+        self.n_rows.append(n_rows)
+        self.n_errors.append(n_errors)
+
+
+def _categorical_items(builder, column, index, series, min_rows):
+    codes, uniques = pd.factorize(series, sort=True, use_na_sentinel=True)
+    counts = np.bincount(codes[codes >= 0], minlength=len(uniques))
+    rare = [k for k in range(len(uniques)) if counts[k] < min_rows]
+    for k in range(len(uniques)):
+        if counts[k] >= min_rows:
+            value = uniques[k]
+            builder.add(Item(column, "=", value, f"{column} = {_format_value(value)}"), index, codes == k)
+    if len(rare) >= 2:
+        values = tuple(uniques[k] for k in rare)
+        shown = ", ".join(_format_value(v) for v in values[:3])
+        more = f", … {len(values)} values" if len(values) > 3 else ""
+        text = f"{column} in {{{shown}{more}}}"
+        builder.add(Item(column, "rare", values, text), index, np.isin(codes, rare))
+    missing = codes < 0
+    if missing.any():
+        builder.add(Item(column, "missing", None, f"{column} is missing"), index, missing)
+
+
+def _tree_cuts(x: np.ndarray, errors: np.ndarray, min_rows: int, depth: int, rng) -> list[float]:
+    """Split points of a depth-`depth` decision tree on (x -> error), fitted on a sample."""
+    from sklearn.tree import DecisionTreeClassifier
+
+    if x.size > TREE_SAMPLE:
+        pick = rng.choice(x.size, TREE_SAMPLE, replace=False)
+        scale = TREE_SAMPLE / x.size
+        x, errors = x[pick], errors[pick]
+        min_rows = max(1, int(min_rows * scale))
+    tree = DecisionTreeClassifier(max_depth=depth, min_samples_leaf=max(1, min_rows),
+                                  random_state=0)
+    tree.fit(x.reshape(-1, 1), errors)
+    nodes = tree.tree_
+    return sorted(float(t) for f, t in zip(nodes.feature, nodes.threshold) if f >= 0)
+
+
+def _numeric_items(builder, column, index, values, errors, min_rows, n_bins, depth, rng):
+    x = np.asarray(values, dtype=np.float64)
+    present = ~np.isnan(x)
+    xs = x[present]
+    if xs.size == 0:
+        return
+    sorted_x = np.sort(xs)
+    raw = []
+    if n_bins > 1:
+        raw += list(np.quantile(sorted_x, np.arange(1, n_bins) / n_bins, method="linear"))
+    tree_raw = _tree_cuts(xs, errors[present], min_rows, depth, rng) if depth > 0 else []
+    cuts = set()
+    tree_cuts = set()
+    for origin, group in (("quantile", raw), ("tree", tree_raw)):
+        for c in group:
+            # the split "x >= c" between the nearest data values on either side
+            hi_pos = int(np.searchsorted(sorted_x, c, side="left"))
+            if origin == "tree":      # sklearn's threshold t sends x <= t left
+                hi_pos = int(np.searchsorted(sorted_x, c, side="right"))
+            if hi_pos <= 0 or hi_pos >= sorted_x.size:
+                continue
+            low, high = float(sorted_x[hi_pos - 1]), float(sorted_x[hi_pos])
+            if low == high:
+                continue
+            cut = readable_cut(low, high)
+            cuts.add(cut)
+            if origin == "tree":
+                tree_cuts.add(cut)
+    ordered = sorted(cuts)
+    for cut in ordered:
+        ge = present & (x >= cut)
+        builder.add(Item(column, "<", cut, f"{column} < {_fmt(cut)}"), index, present & (x < cut))
+        builder.add(Item(column, ">=", cut, f"{column} >= {_fmt(cut)}"), index, ge)
+    for low, high in zip(ordered[:-1], ordered[1:]):
+        mask = present & (x >= low) & (x < high)
+        builder.add(Item(column, "range", (low, high), f"{_fmt(low)} <= {column} < {_fmt(high)}"), index, mask)
+    if not present.all():
+        builder.add(Item(column, "missing", None, f"{column} is missing"), index, ~present)
+
+
+def _datetime_items(builder, column, index, series, min_rows):
+    stamps = pd.to_datetime(series)
+    present = stamps.notna().to_numpy()
+    hours = stamps.dt.hour.to_numpy(dtype=np.float64, na_value=np.nan)
+    days = stamps.dt.weekday.to_numpy(dtype=np.float64, na_value=np.nan)
+    for h in range(24):
+        builder.add(Item(column, "hour", h, f"hour of {column} = {h}"), index, hours == h)
+    for d in range(7):
+        builder.add(Item(column, "weekday", d, f"weekday of {column} = {WEEKDAYS[d]}"), index, days == d)
+    if not present.all():
+        builder.add(Item(column, "missing", None, f"{column} is missing"), index, ~present)
+
+
+def build_items(table: EvalTable, *, min_rows: int, min_errors: int = 1, n_bins: int = 4,
+                tree_depth: int = 2, rng=None) -> ItemSet:
+    """Items of every mined column, keeping those with >= `min_rows` rows and >= `min_errors` errors.
+
+    Items that cover every row, and items whose rows equal an earlier item of the same
+    column, are dropped. Assumes a validated `EvalTable`.
+    """
+    rng = np.random.default_rng(rng)
+    builder = _Builder(table.errors, min_rows, min_errors)
+    columns = tuple(table.kinds)
+    for index, column in enumerate(columns):
+        kind = table.kinds[column]
+        series = table.data[column]
+        if kind == CATEGORICAL:
+            _categorical_items(builder, column, index, series, min_rows)
+        elif kind == NUMERIC:
+            values = series.to_numpy()
+            if pd.api.types.is_timedelta64_dtype(series.dtype):
+                values = series.dt.total_seconds().to_numpy()
+            _numeric_items(builder, column, index, pd.to_numeric(pd.Series(values), errors="coerce").to_numpy(dtype=np.float64, na_value=np.nan),
+                           table.errors, min_rows, n_bins, tree_depth, rng)
+        elif kind == DATETIME:
+            _datetime_items(builder, column, index, series, min_rows)
+    n_err = int(table.errors.sum())
+    empty_all = np.zeros((0, bitset.n_words(table.n_rows)), dtype=np.uint64)
+    empty_err = np.zeros((0, bitset.n_words(n_err)), dtype=np.uint64)
+    return ItemSet(
+        items=tuple(builder.items),
+        column_of=np.asarray(builder.cols, dtype=np.int64),
+        columns=columns,
+        bits=np.stack(builder.bits) if builder.bits else empty_all,
+        error_bits=np.stack(builder.error_bits) if builder.error_bits else empty_err,
+        n_rows=np.asarray(builder.n_rows, dtype=np.int64),
+        n_errors=np.asarray(builder.n_errors, dtype=np.int64),
+    )

@@ -1,0 +1,409 @@
+"""The eval table: validated input, error flags and the kind of every column.
+
+Everything the user passes to `find_slices` is checked here, once. Code below this
+module trusts an `EvalTable` and never re-validates.
+"""
+from __future__ import annotations
+
+import difflib
+from dataclasses import dataclass, field
+from typing import Any, Mapping, Sequence
+
+import numpy as np
+import pandas as pd
+
+__all__ = [
+    "SlicefindError",
+    "SlicefindValueError",
+    "SlicefindTypeError",
+    "EvalTable",
+    "build_eval_table",
+    "ERROR_KINDS",
+    "CATEGORICAL",
+    "NUMERIC",
+    "DATETIME",
+]
+
+CATEGORICAL = "categorical"
+NUMERIC = "numeric"
+DATETIME = "datetime"
+ERROR_KINDS = ("all", "false_positive", "false_negative")
+
+#: integer columns with at most this many distinct values are mined as categories
+MAX_INT_LEVELS = 20
+#: string columns with more distinct values than this are skipped (ids, paths, free text)
+MAX_STRING_LEVELS = 200
+
+
+class SlicefindError(Exception):
+    """Base class of every error slicefind raises on purpose."""
+
+
+class SlicefindValueError(SlicefindError, ValueError):
+    """A bad value: the message names the argument or column and the value."""
+
+
+class SlicefindTypeError(SlicefindError, TypeError):
+    """A bad type: the message names the argument or column and the type."""
+
+
+@dataclass(frozen=True, repr=False)
+class EvalTable:
+    """A validated dev set: which rows are errors and which columns can be mined.
+
+    Build it with `build_eval_table`; the fields are read-only views and are never
+    written back into the user's frame.
+    """
+
+    data: pd.DataFrame                 # the user's frame, restricted to the analysed rows
+    errors: np.ndarray                 # bool, one per analysed row
+    positions: np.ndarray              # positional index of each analysed row in the user's frame
+    n_input_rows: int                  # rows of the user's frame
+    kinds: Mapping[str, str]           # mined column -> CATEGORICAL | NUMERIC | DATETIME
+    skipped: Mapping[str, str]         # column -> why it is not mined
+    label: np.ndarray | None = None
+    prediction: np.ndarray | None = None
+    embeddings: np.ndarray | None = None
+    id_column: str | None = None
+    error_definition: str = "label != prediction"
+    columns_used: Mapping[str, str] = field(default_factory=dict)  # role -> column name
+
+    @property
+    def n_rows(self) -> int:
+        return int(self.errors.size)
+
+    @property
+    def n_errors(self) -> int:
+        return int(self.errors.sum())
+
+    @property
+    def error_rate(self) -> float:
+        return self.n_errors / self.n_rows
+
+    def __repr__(self):
+        return (f"EvalTable(n_rows={self.n_rows}, n_errors={self.n_errors}, "
+                f"mined={len(self.kinds)}, skipped={len(self.skipped)})")
+
+
+def _suggest(name, options) -> str:
+    """' Did you mean ...?' for the closest option, or ''."""
+    close = difflib.get_close_matches(str(name), [str(o) for o in options], n=1, cutoff=0.5)
+    return f" Did you mean {close[0]!r}?" if close else ""
+
+
+def _column_or_array(data: pd.DataFrame, value, argument: str):
+    """Resolve a column name or an array-like to (values, column name or None)."""
+    if value is None:
+        return None, None
+    if isinstance(value, str):
+        if value not in data.columns:
+            msg = f"{argument}={value!r} is not a column of data.{_suggest(value, data.columns)}"
+            raise SlicefindValueError(msg)
+        return data[value].to_numpy(), value
+    if isinstance(value, pd.Series):
+        values = value.to_numpy()
+    elif isinstance(value, (np.ndarray, list, tuple, pd.Index, pd.api.extensions.ExtensionArray)):
+        values = np.asarray(value, dtype=object if isinstance(value, (list, tuple)) else None)
+    else:
+        msg = (f"{argument} must be a column name or an array-like of length {len(data)}; "
+               f"got {type(value).__name__}.")
+        raise SlicefindTypeError(msg)
+    if values.ndim != 1:
+        msg = f"{argument} must be one-dimensional; got shape {values.shape}."
+        raise SlicefindValueError(msg)
+    if len(values) != len(data):
+        msg = (f"{argument} has {len(values)} values but data has {len(data)} rows; "
+               "they must be the same length.")
+        raise SlicefindValueError(msg)
+    return values, None
+
+
+def _no_missing(values: np.ndarray, argument: str) -> None:
+    """Raise if `values` holds NaN/None (labels and predictions must be complete)."""
+    missing = pd.isna(pd.Series(values, dtype=object if values.dtype == object else None))
+    if missing.any():
+        first = int(np.flatnonzero(missing.to_numpy())[0])
+        msg = (f"{argument} has {int(missing.sum())} missing values (NaN/None), first at row "
+               f"{first}; drop those rows or fill them before calling.")
+        raise SlicefindValueError(msg)
+
+
+def _error_flags(values: np.ndarray, argument: str) -> np.ndarray:
+    """Booleans from a bool or 0/1 array, or a clear error naming the first bad row."""
+    flags = pd.Series(values)
+    if flags.dtype == bool:
+        return flags.to_numpy(dtype=bool)
+    bad = ~flags.isin([True, False, 0, 1])
+    if bad.any():
+        first = int(np.flatnonzero(bad.to_numpy())[0])
+        msg = (f"{argument} must hold booleans or 0/1; row {first} holds {flags.iat[first]!r} "
+               f"({int(bad.sum())} bad rows).")
+        raise SlicefindValueError(msg)
+    return flags.to_numpy().astype(bool)
+
+
+def _equal(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """Elementwise equality of labels and predictions, tolerant of mixed dtypes."""
+    try:
+        eq = np.asarray(a == b)
+        if eq.shape == a.shape and eq.dtype == bool:
+            return eq
+    except (TypeError, ValueError):
+        pass
+    return np.array([x == y for x, y in zip(a.tolist(), b.tolist())], dtype=bool)
+
+
+def _check_hashable(data: pd.DataFrame, column) -> None:
+    """Raise if an object column holds unhashable cells (lists, dicts, arrays)."""
+    series = data[column]
+    if series.dtype != object:
+        return
+    for i, value in enumerate(series.to_numpy()):
+        try:
+            hash(value)
+        except TypeError:
+            msg = (f"column {column!r} holds an unhashable value at row {i} "
+                   f"({type(value).__name__}: {str(value)[:40]!r}); pass exclude=[{column!r}] "
+                   "to leave it out, or pass vectors through embeddings=.")
+            raise SlicefindTypeError(msg) from None
+
+
+def _column_kind(series: pd.Series, n_rows: int) -> tuple[str | None, str]:
+    """Infer how a column is mined: (kind, '') or (None, reason it is skipped)."""
+    dtype = series.dtype
+    n_distinct = int(series.nunique(dropna=True))
+    if n_distinct == 0:
+        return None, "all values missing"
+    if n_distinct == 1 and not series.isna().any():
+        return None, "a single value"
+    if pd.api.types.is_bool_dtype(dtype) or isinstance(dtype, pd.CategoricalDtype):
+        return CATEGORICAL, ""
+    if pd.api.types.is_datetime64_any_dtype(dtype):
+        return DATETIME, ""
+    if pd.api.types.is_timedelta64_dtype(dtype):
+        return NUMERIC, ""
+    if pd.api.types.is_integer_dtype(dtype):
+        return (CATEGORICAL if n_distinct <= MAX_INT_LEVELS else NUMERIC), ""
+    if pd.api.types.is_float_dtype(dtype):
+        values = series.dropna().to_numpy()
+        if n_distinct <= MAX_INT_LEVELS and np.all(values == np.round(values)):
+            return CATEGORICAL, ""      # small integer codes stored as float (NaN forced it)
+        return NUMERIC, ""
+    # strings and mixed objects
+    if n_distinct > MAX_STRING_LEVELS:
+        return None, (f"{n_distinct:,} distinct values (ids, paths and free text are not "
+                      "mined; describe text with text_column=)")
+    non_missing = series.dropna()
+    if len(non_missing) and pd.api.types.infer_dtype(non_missing, skipna=True) in (
+            "boolean", "integer", "floating", "mixed-integer-float", "decimal"):
+        return CATEGORICAL, ""
+    return CATEGORICAL, ""
+
+
+def build_eval_table(
+    data,
+    *,
+    label=None,
+    prediction=None,
+    errors=None,
+    loss=None,
+    threshold=None,
+    embeddings=None,
+    exclude: Sequence[str] = (),
+    error_kind: str = "all",
+    positive: Any = None,
+    true_class: Any = None,
+    id_column: str | None = None,
+) -> EvalTable:
+    """Validate the user's dev set and derive the per-row error flag.
+
+    Exactly one way of saying which rows are errors must be given: ``label`` and
+    ``prediction``; ``errors`` (booleans or 0/1); or ``loss`` with ``threshold``
+    (a row is an error when its loss is above the threshold). ``error_kind``
+    ("all", "false_positive", "false_negative", binary tasks) and ``true_class``
+    restrict the analysis to the rows where that kind of error is possible: the
+    negatives for false positives, the positives for false negatives, the rows of
+    ``true_class``. Row positions always refer to the user's frame.
+
+    Examples
+    --------
+    >>> frame = pd.DataFrame({"site": ["a", "b", "a", "b"], "y": [0, 1, 1, 0], "p": [0, 0, 1, 1]})
+    >>> build_eval_table(frame, label="y", prediction="p")
+    EvalTable(n_rows=4, n_errors=2, mined=1, skipped=2)
+    """
+    if not isinstance(data, pd.DataFrame):
+        msg = f"data must be a pandas DataFrame; got {type(data).__name__}."
+        raise SlicefindTypeError(msg)
+    if len(data) == 0:
+        raise SlicefindValueError("data is empty (0 rows); slicefind needs a dev set with rows.")
+    duplicated = data.columns[data.columns.duplicated()].unique().tolist()
+    if duplicated:
+        msg = f"data has duplicate column names {duplicated!r}; rename them so each is unique."
+        raise SlicefindValueError(msg)
+    if isinstance(exclude, str):
+        exclude = (exclude,)
+    for column in exclude:
+        if column not in data.columns:
+            msg = f"exclude names {column!r}, which is not a column of data.{_suggest(column, data.columns)}"
+            raise SlicefindValueError(msg)
+    if id_column is not None and id_column not in data.columns:
+        msg = f"id_column={id_column!r} is not a column of data.{_suggest(id_column, data.columns)}"
+        raise SlicefindValueError(msg)
+    if error_kind not in ERROR_KINDS:
+        msg = f"error_kind must be one of {ERROR_KINDS}; got {error_kind!r}."
+        raise SlicefindValueError(msg)
+
+    ways = [name for name, v in (("label/prediction", label if label is not None else prediction),
+                                 ("errors", errors), ("loss", loss)) if v is not None]
+    if len(ways) != 1:
+        msg = ("say which rows are errors in exactly one way: label= and prediction=, or "
+               f"errors=, or loss= with threshold=; got {ways or 'none'}.")
+        raise SlicefindValueError(msg)
+
+    used: dict[str, str] = {}
+    label_values = prediction_values = None
+    if label is not None or prediction is not None:
+        if label is None or prediction is None:
+            missing = "label" if label is None else "prediction"
+            raise SlicefindValueError(f"{missing}= is required when the other of label=/prediction= is given.")
+        label_values, label_col = _column_or_array(data, label, "label")
+        prediction_values, prediction_col = _column_or_array(data, prediction, "prediction")
+        _no_missing(label_values, "label" + (f" column {label_col!r}" if label_col else ""))
+        _no_missing(prediction_values, "prediction" + (f" column {prediction_col!r}" if prediction_col else ""))
+        wrong = ~_equal(label_values, prediction_values)
+        definition = "label != prediction"
+        for role, col in (("label", label_col), ("prediction", prediction_col)):
+            if col is not None:
+                used[role] = col
+    elif errors is not None:
+        values, col = _column_or_array(data, errors, "errors")
+        wrong = _error_flags(values, "errors" + (f" column {col!r}" if col else ""))
+        definition = f"{col or 'errors'} is true"
+        if col is not None:
+            used["errors"] = col
+    else:
+        if threshold is None:
+            raise SlicefindValueError("loss= needs threshold=: a row is an error when its loss is above it.")
+        values, col = _column_or_array(data, loss, "loss")
+        try:
+            numeric = np.asarray(values, dtype=float)
+        except (TypeError, ValueError):
+            msg = f"loss must be numeric; got values such as {values[0]!r}."
+            raise SlicefindTypeError(msg) from None
+        if not np.all(np.isfinite(numeric)):
+            first = int(np.flatnonzero(~np.isfinite(numeric))[0])
+            msg = f"loss has a non-finite value {numeric[first]!r} at row {first}; losses must be finite numbers."
+            raise SlicefindValueError(msg)
+        if not isinstance(threshold, (int, float, np.number)) or not np.isfinite(threshold):
+            raise SlicefindValueError(f"threshold must be a finite number; got {threshold!r}.")
+        wrong = numeric > threshold
+        definition = f"{col or 'loss'} > {threshold:g}"
+        if col is not None:
+            used["loss"] = col
+
+    keep = np.ones(len(data), dtype=bool)
+    if error_kind != "all" or true_class is not None:
+        if label_values is None:
+            msg = "error_kind= and true_class= need label= and prediction= (not errors= or loss=)."
+            raise SlicefindValueError(msg)
+    if error_kind != "all":
+        classes = pd.unique(pd.Series(label_values, dtype=object))
+        if positive is None:
+            if len(classes) > 2:
+                msg = (f"error_kind={error_kind!r} is for binary tasks, but label has {len(classes)} "
+                       "classes; pass positive= to name the positive class.")
+                raise SlicefindValueError(msg)
+            positive = 1 if 1 in set(classes.tolist()) else (True if True in set(classes.tolist()) else None)
+            if positive is None:
+                msg = f"error_kind={error_kind!r} needs positive=, the positive class; labels are {sorted(map(str, classes))!r}."
+                raise SlicefindValueError(msg)
+        if positive not in set(classes.tolist()):
+            msg = f"positive={positive!r} is not a label value; labels are {sorted(map(str, classes))[:10]!r}."
+            raise SlicefindValueError(msg)
+        is_pos = _equal(label_values, np.full(len(label_values), positive, dtype=object))
+        keep &= ~is_pos if error_kind == "false_positive" else is_pos
+        definition = f"{error_kind.replace('_', ' ')} (positive = {positive!r})"
+    if true_class is not None:
+        is_class = _equal(label_values, np.full(len(label_values), true_class, dtype=object))
+        if not is_class.any():
+            msg = f"true_class={true_class!r} never occurs in label."
+            raise SlicefindValueError(msg)
+        keep &= is_class
+        definition += f", label = {true_class!r}"
+
+    positions = np.flatnonzero(keep).astype(np.intp)
+    wrong = wrong[keep]
+    n_errors = int(wrong.sum())
+    if n_errors == 0:
+        msg = (f"no row is an error ({definition}) among the {wrong.size:,} rows analysed; "
+               "there is nothing to explain. Check label=/prediction= or the error definition.")
+        raise SlicefindValueError(msg)
+    if n_errors == wrong.size:
+        msg = (f"every one of the {wrong.size:,} rows analysed is an error ({definition}); "
+               "slices need correct rows to compare against. Check label=/prediction=.")
+        raise SlicefindValueError(msg)
+
+    emb = None
+    if embeddings is not None:
+        emb = _check_embeddings(embeddings, len(data))[keep]
+
+    not_mined = set(exclude) | set(used.values()) | ({id_column} if id_column else set())
+    view = data.iloc[positions] if not keep.all() else data
+    kinds: dict[str, str] = {}
+    skipped: dict[str, str] = {}
+    for column in data.columns:
+        if column in not_mined:
+            skipped[column] = "excluded" if column in exclude else ("id column" if column == id_column
+                                                                    else f"{_role(used, column)} column")
+            continue
+        _check_hashable(data, column)
+        kind, reason = _column_kind(view[column], len(view))
+        if kind is None:
+            skipped[column] = reason
+        else:
+            kinds[column] = kind
+
+    return EvalTable(
+        data=view,
+        errors=wrong,
+        positions=positions,
+        n_input_rows=len(data),
+        kinds=kinds,
+        skipped=skipped,
+        label=None if label_values is None else label_values[keep],
+        prediction=None if prediction_values is None else prediction_values[keep],
+        embeddings=emb,
+        id_column=id_column,
+        error_definition=definition,
+        columns_used=used,
+    )
+
+
+def _role(used: Mapping[str, str], column: str) -> str:
+    return next(role for role, col in used.items() if col == column)
+
+
+def _check_embeddings(embeddings, n_rows: int) -> np.ndarray:
+    """A finite float (n_rows, d) array, or a clear error."""
+    if isinstance(embeddings, pd.DataFrame):
+        embeddings = embeddings.to_numpy()
+    try:
+        emb = np.asarray(embeddings, dtype=np.float64)
+    except (TypeError, ValueError):
+        msg = f"embeddings must be a numeric (n_rows, d) array; got {type(embeddings).__name__}."
+        raise SlicefindTypeError(msg) from None
+    if emb.ndim != 2:
+        msg = f"embeddings must be two-dimensional (n_rows, d); got shape {emb.shape}."
+        raise SlicefindValueError(msg)
+    if emb.shape[0] != n_rows:
+        msg = f"embeddings has {emb.shape[0]} rows but data has {n_rows}; they must match row for row."
+        raise SlicefindValueError(msg)
+    if emb.shape[1] == 0:
+        raise SlicefindValueError("embeddings has 0 columns; it needs at least one dimension.")
+    bad = ~np.isfinite(emb)
+    if bad.any():
+        row, col = (int(x) for x in np.argwhere(bad)[0])
+        msg = (f"embeddings holds {int(bad.any(axis=1).sum())} rows with NaN or inf, first at row "
+               f"{row} (column {col}: {emb[row, col]!r}); drop or impute them first.")
+        raise SlicefindValueError(msg)
+    return emb

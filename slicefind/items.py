@@ -22,8 +22,6 @@ from slicefind.table import CATEGORICAL, DATETIME, NUMERIC, EvalTable
 __all__ = ["Item", "ItemSet", "build_items", "readable_cut", "WEEKDAYS"]
 
 WEEKDAYS = ("Mon", "Tue", "Wed", "Thu", "Fri", "Sat", "Sun")
-#: rows the per-column decision tree is fitted on at most (cut points only need a sample)
-TREE_SAMPLE = 200_000
 
 
 @dataclass(frozen=True)
@@ -101,8 +99,7 @@ def readable_cut(low: float, high: float) -> float:
 
 def _fmt(x: float) -> str:
     """Shortest text of a float cut point."""
-    text = f"{x:.12g}"
-    return text
+    return f"{x:.12g}"
 
 
 class _Builder:
@@ -161,55 +158,101 @@ def _categorical_items(builder, column, index, series, min_rows):
         builder.add(Item(column, "missing", None, f"{column} is missing"), index, missing)
 
 
-def _tree_cuts(x: np.ndarray, errors: np.ndarray, min_rows: int, depth: int, rng) -> list[float]:
-    """Split points of a depth-`depth` decision tree on (x -> error), fitted on a sample."""
-    from sklearn.tree import DecisionTreeClassifier
-
-    if x.size > TREE_SAMPLE:
-        pick = rng.choice(x.size, TREE_SAMPLE, replace=False)
-        scale = TREE_SAMPLE / x.size
-        x, errors = x[pick], errors[pick]
-        min_rows = max(1, int(min_rows * scale))
-    tree = DecisionTreeClassifier(max_depth=depth, min_samples_leaf=max(1, min_rows),
-                                  random_state=0)
-    tree.fit(x.reshape(-1, 1), errors)
-    nodes = tree.tree_
-    return sorted(float(t) for f, t in zip(nodes.feature, nodes.threshold) if f >= 0)
+def _split_score(n_left, e_left, n_node, e_node):
+    """Gini purity of a binary split (larger is better): sum over sides of (e² + c²) / n."""
+    n_right, e_right = n_node - n_left, e_node - e_left
+    c_left, c_right = n_left - e_left, n_right - e_right
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return (e_left ** 2 + c_left ** 2) / n_left + (e_right ** 2 + c_right ** 2) / n_right
 
 
-def _numeric_items(builder, column, index, values, errors, min_rows, n_bins, depth, rng):
+def _round_cut(xs: np.ndarray, pos: int, accept) -> float:
+    """The coarsest decimal cut whose split position `accept` allows, else the exact one.
+
+    ``xs`` is sorted; the exact split puts ``xs[:pos]`` below the cut.
+    """
+    low, high = float(xs[pos - 1]), float(xs[pos])
+    middle = (low + high) / 2.0
+    span = max(abs(low), abs(high), 1e-300)
+    for exponent in range(math.floor(math.log10(span)) + 1, -16, -1):
+        step = 10.0 ** exponent
+        options = {round(math.floor(middle / step) * step, max(0, -exponent)),
+                   round(math.ceil(middle / step) * step, max(0, -exponent))}
+        moved = sorted((abs(int(np.searchsorted(xs, r, side="left")) - pos), r) for r in options)
+        for _, r in moved:
+            if accept(int(np.searchsorted(xs, r, side="left"))):
+                return float(r)
+        if step < (high - low):      # finer steps only find cuts inside the exact gap
+            break
+    return readable_cut(low, high)
+
+
+def _tree_cuts(xs: np.ndarray, errs: np.ndarray, min_leaf: int, depth: int) -> list[float]:
+    """Error-aware cut points: a depth-`depth` binary tree on sorted x (best Gini split per
+    node), keeping only splits whose two sides differ in error rate (two-sided Fisher
+    p < 0.001 within the node) and rounding each to the coarsest decimal that keeps 98% of
+    the split's Gini gain."""
+    from slicefind.stats import fisher_greater
+
+    n = xs.size
+    cum = np.concatenate([[0], np.cumsum(errs, dtype=np.int64)])
+    distinct = np.concatenate([[False], xs[1:] > xs[:-1]])      # a split may fall before i
+    cuts: list[float] = []
+    nodes = [(0, n, 0)]
+    while nodes:
+        lo, hi, level = nodes.pop()
+        if level >= depth or hi - lo < 2 * min_leaf:
+            continue
+        positions = np.arange(lo + min_leaf, hi - min_leaf + 1)
+        positions = positions[distinct[positions]] if positions.size else positions
+        if positions.size == 0:
+            continue
+        n_node, e_node = hi - lo, int(cum[hi] - cum[lo])
+        if e_node == 0 or e_node == n_node:
+            continue
+        scores = _split_score(positions - lo, cum[positions] - cum[lo], n_node, e_node)
+        best = int(positions[int(np.argmax(scores))])
+        n_left, e_left = best - lo, int(cum[best] - cum[lo])
+        p = 2.0 * min(fisher_greater(e_left, n_left, e_node, n_node),
+                      fisher_greater(e_node - e_left, n_node - n_left, e_node, n_node))
+        if p >= 1e-3:
+            continue
+        base = (e_node ** 2 + (n_node - e_node) ** 2) / n_node
+        gain = float(scores.max()) - base
+
+        def accept(pos, lo=lo, hi=hi, n_node=n_node, e_node=e_node, base=base, gain=gain):
+            if pos - lo < min_leaf or hi - pos < min_leaf:
+                return False
+            got = _split_score(pos - lo, cum[pos] - cum[lo], n_node, e_node) - base
+            return got >= 0.98 * gain
+
+        cuts.append(_round_cut(xs, best, accept))
+        nodes += [(lo, best, level + 1), (best, hi, level + 1)]
+    return sorted(cuts)
+
+
+def _numeric_items(builder, column, index, values, errors, min_rows, n_bins, depth):
     x = np.asarray(values, dtype=np.float64)
     present = ~np.isnan(x)
-    xs = x[present]
-    if xs.size == 0:
+    order = np.argsort(x[present], kind="stable")
+    xs = x[present][order]
+    if xs.size < 2:
         return
-    sorted_x = np.sort(xs)
-    raw = []
-    if n_bins > 1:
-        raw += list(np.quantile(sorted_x, np.arange(1, n_bins) / n_bins, method="linear"))
-    tree_raw = _tree_cuts(xs, errors[present], min_rows, depth, rng) if depth > 0 else []
     cuts = set()
-    tree_cuts = set()
-    for origin, group in (("quantile", raw), ("tree", tree_raw)):
-        for c in group:
-            # the split "x >= c" between the nearest data values on either side
-            hi_pos = int(np.searchsorted(sorted_x, c, side="left"))
-            if origin == "tree":      # sklearn's threshold t sends x <= t left
-                hi_pos = int(np.searchsorted(sorted_x, c, side="right"))
-            if hi_pos <= 0 or hi_pos >= sorted_x.size:
-                continue
-            low, high = float(sorted_x[hi_pos - 1]), float(sorted_x[hi_pos])
-            if low == high:
-                continue
-            cut = readable_cut(low, high)
-            cuts.add(cut)
-            if origin == "tree":
-                tree_cuts.add(cut)
+    if n_bins > 1:
+        tolerance = max(1, int(0.01 * xs.size))   # a quantile may move by 1% of rows to read well
+        for q in np.arange(1, n_bins) / n_bins:
+            pos = int(np.searchsorted(xs, np.quantile(xs, q), side="left"))
+            if 0 < pos < xs.size and xs[pos - 1] < xs[pos]:
+                cuts.add(_round_cut(xs, pos, lambda p, pos=pos: abs(p - pos) <= tolerance
+                                    and 0 < p < xs.size))
+    if depth > 0:
+        min_leaf = max(min_rows, xs.size // 100)
+        cuts.update(_tree_cuts(xs, errors[present][order], min_leaf, depth))
     ordered = sorted(cuts)
     for cut in ordered:
-        ge = present & (x >= cut)
         builder.add(Item(column, "<", cut, f"{column} < {_fmt(cut)}"), index, present & (x < cut))
-        builder.add(Item(column, ">=", cut, f"{column} >= {_fmt(cut)}"), index, ge)
+        builder.add(Item(column, ">=", cut, f"{column} >= {_fmt(cut)}"), index, present & (x >= cut))
     for low, high in zip(ordered[:-1], ordered[1:]):
         mask = present & (x >= low) & (x < high)
         builder.add(Item(column, "range", (low, high), f"{_fmt(low)} <= {column} < {_fmt(high)}"), index, mask)
@@ -221,7 +264,7 @@ def _datetime_items(builder, column, index, series, min_rows):
     stamps = pd.to_datetime(series)
     present = stamps.notna().to_numpy()
     hours = stamps.dt.hour.to_numpy(dtype=np.float64, na_value=np.nan)
-    days = stamps.dt.weekday.to_numpy(dtype=np.float64, na_value=np.nan)
+    days = stamps.dt.day_of_week.to_numpy(dtype=np.float64, na_value=np.nan)
     for h in range(24):
         builder.add(Item(column, "hour", h, f"hour of {column} = {h}"), index, hours == h)
     for d in range(7):
@@ -231,13 +274,12 @@ def _datetime_items(builder, column, index, series, min_rows):
 
 
 def build_items(table: EvalTable, *, min_rows: int, min_errors: int = 1, n_bins: int = 4,
-                tree_depth: int = 2, rng=None) -> ItemSet:
+                tree_depth: int = 2) -> ItemSet:
     """Items of every mined column, keeping those with >= `min_rows` rows and >= `min_errors` errors.
 
     Items that cover every row, and items whose rows equal an earlier item of the same
     column, are dropped. Assumes a validated `EvalTable`.
     """
-    rng = np.random.default_rng(rng)
     builder = _Builder(table.errors, min_rows, min_errors)
     columns = tuple(table.kinds)
     for index, column in enumerate(columns):
@@ -249,8 +291,9 @@ def build_items(table: EvalTable, *, min_rows: int, min_errors: int = 1, n_bins:
             values = series.to_numpy()
             if pd.api.types.is_timedelta64_dtype(series.dtype):
                 values = series.dt.total_seconds().to_numpy()
-            _numeric_items(builder, column, index, pd.to_numeric(pd.Series(values), errors="coerce").to_numpy(dtype=np.float64, na_value=np.nan),
-                           table.errors, min_rows, n_bins, tree_depth, rng)
+            numeric = pd.to_numeric(pd.Series(values), errors="coerce")
+            _numeric_items(builder, column, index, numeric.to_numpy(dtype=np.float64, na_value=np.nan),
+                           table.errors, min_rows, n_bins, tree_depth)
         elif kind == DATETIME:
             _datetime_items(builder, column, index, series, min_rows)
     n_err = int(table.errors.sum())

@@ -136,6 +136,9 @@ def _search_mlxtend(items: ItemSet, max_terms: int, min_rows: int, min_errors: i
     from mlxtend.frequent_patterns import fpgrowth
 
     m = len(items)
+    if m == 0 or min_errors > n_errors:
+        return RuleCounts((np.zeros((0, 1), np.int64),), (np.zeros(0, np.int64),),
+                          (np.zeros(0, np.int64),), 0, ())
     error_masks = bitset.unpack(items.error_bits, n_errors).T
     onehot = pd.DataFrame(error_masks, columns=list(range(m)))
     found = fpgrowth(onehot, min_support=min_errors / n_errors, max_len=max_terms,
@@ -189,13 +192,24 @@ def search_rules(items: ItemSet, *, max_terms: int, min_rows: int, min_errors: i
     return _search_bitset(items, max_terms, min_rows, min_errors, kernel)
 
 
-def _lookup(levels, rules: np.ndarray, base: int) -> np.ndarray:
-    """Index of each rule in its level (all must exist)."""
-    width = rules.shape[1]
-    codes = _encode(levels[width - 1], base)
-    order = np.argsort(codes)
-    pos = np.searchsorted(codes[order], _encode(rules, base))
-    return order[pos]
+class _LevelIndex:
+    """Finds rules by their items: per level, the sorted mixed-radix codes."""
+
+    def __init__(self, levels, base: int):
+        self.base = base
+        self.codes = []
+        self.order = []
+        for level in levels:
+            codes = _encode(level, base)
+            order = np.argsort(codes, kind="stable")
+            self.codes.append(codes[order])
+            self.order.append(order)
+
+    def find(self, rules: np.ndarray) -> np.ndarray:
+        """Index of each rule (row of items) within its level; all must exist."""
+        width = rules.shape[1]
+        pos = np.searchsorted(self.codes[width - 1], _encode(rules, self.base))
+        return self.order[width - 1][pos]
 
 
 def refinement_pvalues(counts: RuleCounts, n_items: int) -> tuple[np.ndarray, ...]:
@@ -205,14 +219,14 @@ def refinement_pvalues(counts: RuleCounts, n_items: int) -> tuple[np.ndarray, ..
     the parent's other rows. Level-1 rules get 0 (their parent is the whole table and
     is tested by the main p-value). A rule with the same rows as a parent gets 1.
     """
-    base = max(2, n_items)
+    index = _LevelIndex(counts.levels, max(2, n_items))
     out = [np.zeros(len(counts.levels[0]))]
     for width in range(2, len(counts.levels) + 1):
         rules = counts.levels[width - 1]
         k, r = counts.n_errors[width - 1], counts.n_rows[width - 1]
         worst = np.zeros(len(rules))
         for drop in range(width):
-            idx = _lookup(counts.levels, np.delete(rules, drop, axis=1), base)
+            idx = index.find(np.delete(rules, drop, axis=1))
             kp, rp = counts.n_errors[width - 2][idx], counts.n_rows[width - 2][idx]
             p = np.where(rp > r, fisher_greater(k, r, kp, rp), 1.0)
             worst = np.maximum(worst, p)
@@ -230,7 +244,7 @@ def fold_into_refinements(counts: RuleCounts, shown: tuple[np.ndarray, ...], n_i
     follows chains to the deepest refinement. Returns, per level, the (level, index) of
     the rule each rule folds into, or (-1, -1).
     """
-    base = max(2, n_items)
+    index = _LevelIndex(counts.levels, max(2, n_items))
     target = [np.full((len(level), 2), -1, dtype=np.int64) for level in counts.levels]
     rate = total_errors / total_rows
     for width in range(len(counts.levels), 1, -1):
@@ -242,7 +256,7 @@ def fold_into_refinements(counts: RuleCounts, shown: tuple[np.ndarray, ...], n_i
         for i in show:
             k_r, r_r = counts.n_errors[width - 1][i], counts.n_rows[width - 1][i]
             excess = k_r - r_r * rate
-            parents = _lookup(counts.levels, np.stack([np.delete(rules[i], d) for d in range(width)]), base)
+            parents = index.find(np.stack([np.delete(rules[i], d) for d in range(width)]))
             for j in parents:
                 if not shown[width - 2][j]:
                     continue

@@ -27,6 +27,9 @@ __all__ = ["Slice", "FoundSlices", "find_slices", "TABLE_COLUMNS", "default_min_
 #: the contract's columns of `FoundSlices.table`, in order (extra columns follow)
 TABLE_COLUMNS = ("slice_id", "source", "description") + SCORE_COLUMNS + ("q_value",)
 SOURCES = ("rule", "region", "error_mode")
+CLUSTER_CHOICES = ("both", "regions", "error_modes", "none")
+TESTED_COLUMNS = (("description", "source", "n_terms") + SCORE_COLUMNS
+                  + ("q_value", "passed", "worse_than_parents", "folded_into"))
 
 
 @dataclass(frozen=True, repr=False)
@@ -147,7 +150,8 @@ class FoundSlices:
         return head + shown.to_html(index=False, float_format=lambda x: f"{x:.3g}")
 
 
-def _check_params(n_rows, max_terms, min_rows, min_errors, fdr, confidence_level, engine):
+def _check_params(n_rows, max_terms, min_rows, min_errors, fdr, confidence_level, engine,
+                  clusters, merge_jaccard):
     """Validate find_slices' options; return (min_rows, min_errors) as ints or None."""
     def _int(name, value, low):
         if isinstance(value, bool) or not isinstance(value, (int, np.integer)):
@@ -166,6 +170,10 @@ def _check_params(n_rows, max_terms, min_rows, min_errors, fdr, confidence_level
             raise SlicefindValueError(f"{name} must be a number strictly between 0 and 1; got {value!r}.")
     if engine not in ENGINES:
         raise SlicefindValueError(f"engine must be one of {ENGINES}; got {engine!r}.")
+    if clusters not in CLUSTER_CHOICES:
+        raise SlicefindValueError(f"clusters must be one of {CLUSTER_CHOICES}; got {clusters!r}.")
+    if isinstance(merge_jaccard, bool) or not isinstance(merge_jaccard, (int, float)) or not 0 < merge_jaccard <= 1:
+        raise SlicefindValueError(f"merge_jaccard must be a number in (0, 1]; got {merge_jaccard!r}.")
     return max_terms, min_rows, min_errors
 
 
@@ -201,6 +209,9 @@ def find_slices(
     true_class=None,
     id_column: str | None = None,
     n_bins: int = 4,
+    clusters: str = "both",
+    cluster_options: Mapping[str, Any] | None = None,
+    merge_jaccard: float = 0.8,
 ) -> FoundSlices:
     """Find groups of rows where the model errs more often than on the rest.
 
@@ -246,6 +257,13 @@ def find_slices(
         The column that identifies examples (kept for the review queue, never mined).
     n_bins : int, default=4
         Quantile bins per numeric column (besides the error-aware cut points).
+    clusters : {"both", "regions", "error_modes", "none"}, default="both"
+        Which embedding clusters to propose when ``embeddings`` is given.
+    cluster_options : mapping, optional
+        Extra keyword arguments for `slicefind.clusters.cluster_slices`.
+    merge_jaccard : float, default=0.8
+        Slices whose rows overlap at least this much (Jaccard) are one entry; the
+        others are listed as its aliases, and a rule is preferred as the main entry.
 
     Returns
     -------
@@ -266,7 +284,8 @@ def find_slices(
                              error_kind=error_kind, positive=positive, true_class=true_class,
                              id_column=id_column)
     max_terms, min_rows, min_errors = _check_params(table.n_rows, max_terms, min_rows, min_errors,
-                                                    fdr, confidence_level, engine)
+                                                    fdr, confidence_level, engine, clusters,
+                                                    merge_jaccard)
     if isinstance(n_bins, bool) or not isinstance(n_bins, (int, np.integer)) or n_bins < 1:
         raise SlicefindValueError(f"n_bins must be an integer >= 1; got {n_bins!r}.")
     rng = np.random.default_rng(random_state)
@@ -281,7 +300,7 @@ def find_slices(
         msg = f"no column of data can be mined and no embeddings were given ({reasons})."
         raise SlicefindValueError(msg)
 
-    items = build_items(table, min_rows=min_rows, min_errors=min_errors, n_bins=n_bins, rng=rng)
+    items = build_items(table, min_rows=min_rows, min_errors=min_errors, n_bins=n_bins)
     counts = search_rules(items, max_terms=max_terms, min_rows=min_rows, min_errors=min_errors,
                           n_errors=k_total, engine=engine)
     where, text = _rule_candidates(items, counts)
@@ -293,11 +312,12 @@ def find_slices(
     q = bh_qvalues(scores["p_value"])
     passed = q <= fdr
     parent_p = np.concatenate(refinement_pvalues(counts, len(items))) if n_rules else np.zeros(0)
-    worse = parent_p <= fdr
+    cutoff = _bh_cutoff(scores["p_value"], q, fdr)
+    worse = parent_p <= cutoff
     shown_flat = passed & worse
     splits = np.cumsum([len(level) for level in counts.levels])[:-1]
     shown = tuple(np.split(shown_flat, splits)) if n_rules else ()
-    folded = fold_into_refinements(counts, shown, len(items), n, k_total, fdr) if n_rules else []
+    folded = fold_into_refinements(counts, shown, len(items), n, k_total, cutoff) if n_rules else []
     folded_flat = np.concatenate(folded) if n_rules else np.zeros((0, 2), np.int64)
     offsets = np.concatenate([[0], np.cumsum([len(level) for level in counts.levels])]).astype(int)
     folded_into = np.where(folded_flat[:, 0] >= 0,
@@ -313,36 +333,82 @@ def find_slices(
     tested["worse_than_parents"] = worse
     tested["folded_into"] = [text[j] if j >= 0 else "" for j in folded_into]
 
-    # candidates that stay: rows, identical-row collapse, ranking
-    candidates = np.flatnonzero(visible)
-    rows_of = {}
-    for idx in candidates:
+    # clusters (when embeddings are given) join the same family of tests
+    cluster_extra: dict[str, Any] = {}
+    extra_slices: list[Slice] = []
+    if table.embeddings is not None and clusters != "none":
+        from slicefind.clusters import cluster_slices
+
+        result = cluster_slices(table, strategy=clusters, random_state=random_state,
+                                **dict(cluster_options or {}))
+        extra_slices = list(result.slices)
+        cluster_extra = {"clusters": result}
+    if extra_slices:
+        ex_rows = np.array([sl.rows.size for sl in extra_slices], dtype=np.int64)
+        ex_errs = np.array([int(table.errors[sl.rows].sum()) for sl in extra_slices], dtype=np.int64)
+        ex_scores = score_slices(ex_rows, ex_errs, n, k_total, confidence_level=confidence_level)
+        ex_frame = pd.DataFrame({"description": [sl.description for sl in extra_slices],
+                                 "source": [sl.source for sl in extra_slices], "n_terms": 0})
+        for column in SCORE_COLUMNS:
+            ex_frame[column] = ex_scores[column]
+        ex_frame["worse_than_parents"] = True
+        ex_frame["folded_into"] = ""
+        tested = pd.concat([tested.drop(columns=["q_value", "passed"]), ex_frame], ignore_index=True)
+        all_p = tested["p_value"].to_numpy()
+        q = bh_qvalues(all_p)
+        tested["q_value"] = q
+        tested["passed"] = q <= fdr
+        tested = tested[list(TESTED_COLUMNS)]
+        # the rules' filters used rule-only q-values; redo them on the joint family
+        passed_rules = q[:n_rules] <= fdr
+        cutoff = _bh_cutoff(all_p, q, fdr)
+        worse = parent_p <= cutoff
+        tested.loc[:n_rules - 1, "worse_than_parents"] = worse
+        shown_flat = passed_rules & worse
+        shown = tuple(np.split(shown_flat, splits)) if n_rules else ()
+        folded = fold_into_refinements(counts, shown, len(items), n, k_total, cutoff) if n_rules else []
+        folded_flat = np.concatenate(folded) if n_rules else np.zeros((0, 2), np.int64)
+        folded_into = np.where(folded_flat[:, 0] >= 0,
+                               offsets[np.maximum(folded_flat[:, 0], 0)] + folded_flat[:, 1], -1)
+        visible = shown_flat & (folded_into < 0)
+        tested.loc[:n_rules - 1, "folded_into"] = [text[j] if j >= 0 else "" for j in folded_into]
+
+    # candidates that stay: rows, near-duplicate merging, ranking
+    cand_idx = list(np.flatnonzero(visible))
+    rows_of: dict[int, np.ndarray] = {}
+    for idx in cand_idx:
         width, i = where[idx]
-        bits = rule_bits(items.bits, counts.levels[width][i:i + 1])
-        rows_of[idx] = bitset.to_rows(bits, n)
-    order = sorted(candidates, key=lambda i: (-scores["excess_errors"][i], where[i][0],
-                                              scores["p_value"][i], text[i]))
-    kept, aliases = [], {}
-    by_size: dict[tuple[int, int], list[int]] = {}
-    for idx in order:
-        key = (int(rule_rows[idx]), int(rule_errs[idx]))
-        twin = next((j for j in by_size.get(key, []) if np.array_equal(rows_of[j], rows_of[idx])), None)
-        if twin is None:
-            by_size.setdefault(key, []).append(idx)
-            kept.append(idx)
-            aliases[idx] = []
-        else:
-            aliases[twin].append(text[idx])
+        rows_of[idx] = bitset.to_rows(rule_bits(items.bits, counts.levels[width][i:i + 1]), n)
+    q_all = tested["q_value"].to_numpy()
+    for j, sl in enumerate(extra_slices):
+        if q_all[n_rules + j] <= fdr:
+            cand_idx.append(n_rules + j)
+            rows_of[n_rules + j] = sl.rows
+    excess = tested["excess_errors"].to_numpy()
+    p_all = tested["p_value"].to_numpy()
+    terms = tested["n_terms"].to_numpy()
+    descriptions = tested["description"].tolist()
+    order = sorted(cand_idx, key=lambda i: (-excess[i], i >= n_rules, terms[i], p_all[i], descriptions[i]))
+    kept, aliases = _merge_near_duplicates(order, rows_of, n, n_rules, merge_jaccard, descriptions)
     folded_names = {idx: [] for idx in kept}
     for j in np.flatnonzero(folded_into >= 0):
         if folded_into[j] in folded_names and shown_flat[j]:
             folded_names[folded_into[j]].append(text[j])
 
-    ids = [f"R{r + 1}" for r in range(len(kept))]
+    source_col = tested["source"].to_numpy()
+    ids, counter = [], {"R": 0, "C": 0}
+    for idx in kept:
+        prefix = "R" if source_col[idx] == "rule" else "C"
+        counter[prefix] += 1
+        ids.append(f"{prefix}{counter[prefix]}")
     tested["slice_id"] = ""
     tested.loc[kept, "slice_id"] = ids
     out = tested.loc[kept].reset_index(drop=True)
     out.insert(0, "slice_id", out.pop("slice_id"))
+    is_cluster = out["source"] != "rule"
+    out.loc[is_cluster, "description"] = [
+        f"{src.replace('_', ' ')} {sid}: {text_}" for src, sid, text_ in
+        zip(out.loc[is_cluster, "source"], out.loc[is_cluster, "slice_id"], out.loc[is_cluster, "description"])]
     out["aliases"] = ["; ".join(aliases[i]) for i in kept]
     out["folded"] = ["; ".join(folded_names[i]) for i in kept]
     table_df = out[list(TABLE_COLUMNS) + ["n_terms", "aliases", "folded"]]
@@ -352,6 +418,56 @@ def find_slices(
     params = dict(max_terms=max_terms, min_rows=min_rows, min_errors=min_errors, fdr=fdr,
                   confidence_level=confidence_level, engine=engine, error_kind=error_kind,
                   n_bins=n_bins, exclude=list(exclude), n_items=len(items),
-                  n_tested=n_rules, error_definition=table.error_definition)
+                  n_tested=len(tested), error_definition=table.error_definition,
+                  clusters=clusters if table.embeddings is not None else "none",
+                  merge_jaccard=merge_jaccard)
     return FoundSlices(table=table_df, tested=tested, eval_table=table, params=params,
-                       _rows=slice_rows, extras={"items": items, "counts": counts})
+                       _rows=slice_rows, extras={"items": items, "counts": counts, **cluster_extra})
+
+
+def _bh_cutoff(p: np.ndarray, q: np.ndarray, fdr: float) -> float:
+    """The largest p-value Benjamini–Hochberg rejects at `fdr` (0 when none).
+
+    The refinement and folding tests use it as their level, so "significantly worse"
+    means the same thing everywhere in the table: significant at the table's standard.
+    """
+    passed = p[q <= fdr]
+    return float(passed.max()) if passed.size else 0.0
+
+
+def _merge_near_duplicates(order, rows_of, n_rows, n_rules, threshold, descriptions):
+    """Greedy merge in rank order: a candidate whose rows overlap a kept one at Jaccard >=
+    `threshold` becomes its alias; when a rule meets a kept cluster, the rule becomes the
+    main entry. Returns (kept indices in rank order, aliases per kept index)."""
+    kept: list[int] = []
+    aliases: dict[int, list[str]] = {}
+    packed: dict[int, np.ndarray] = {}
+    sizes: dict[int, int] = {}
+    for idx in order:
+        rows = rows_of[idx]
+        mask = np.zeros(n_rows, dtype=bool)
+        mask[rows] = True
+        bits = bitset.pack(mask)[0]
+        size = rows.size
+        twin = None
+        for j in kept:
+            small, large = min(size, sizes[j]), max(size, sizes[j])
+            if small < threshold * large:       # Jaccard <= small / large
+                continue
+            inter = int(np.bitwise_count(bits & packed[j]).sum())
+            if inter / (size + sizes[j] - inter) >= threshold:
+                twin = j
+                break
+        if twin is None:
+            kept.append(idx)
+            aliases[idx] = []
+            packed[idx], sizes[idx] = bits, size
+        elif idx < n_rules <= twin:           # a rule explains a kept cluster: swap roles
+            pos = kept.index(twin)
+            kept[pos] = idx
+            aliases[idx] = [descriptions[twin]] + aliases.pop(twin)
+            packed[idx], sizes[idx] = bits, size
+            rows_of[idx] = rows
+        else:
+            aliases[twin].append(descriptions[idx])
+    return kept, aliases

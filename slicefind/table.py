@@ -404,6 +404,6 @@ def _check_embeddings(embeddings, n_rows: int) -> np.ndarray:
     if bad.any():
         row, col = (int(x) for x in np.argwhere(bad)[0])
         msg = (f"embeddings holds {int(bad.any(axis=1).sum())} rows with NaN or inf, first at row "
-               f"{row} (column {col}: {emb[row, col]!r}); drop or impute them first.")
+               f"{row} (column {col}: {float(emb[row, col])!r}); drop or impute them first.")
         raise SlicefindValueError(msg)
     return emb

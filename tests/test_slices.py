@@ -1,0 +1,195 @@
+"""Tests for slicefind.slices: find_slices end to end on planted and null data."""
+import numpy as np
+import pandas as pd
+import pytest
+
+import slicefind as sf
+from slicefind.slices import TABLE_COLUMNS, default_min_rows
+
+
+def _depot(n=6000, seed=0, planted=True):
+    """A generated sorting-depot table; errors rise on scanner S3 at night when planted."""
+    rng = np.random.default_rng(seed)
+    frame = pd.DataFrame({
+        "parcel_id": np.arange(n),
+        "scanner": rng.choice(["S1", "S2", "S3", "S4"], n),
+        "shift": rng.choice(["day", "night"], n, p=[0.6, 0.4]),
+        "label_stock": rng.choice(["matte", "glossy", "thermal"], n),
+        "belt_speed": np.round(rng.uniform(0.5, 3.0, n), 2),
+        "depot": rng.choice(["north", "south", "east"], n),
+    })
+    base = np.full(n, 0.06)
+    if planted:
+        base[((frame["scanner"] == "S3") & (frame["shift"] == "night")).to_numpy()] = 0.45
+    errors = rng.random(n) < base
+    return frame, errors
+
+
+def test_planted_two_term_conjunction_ranks_first():
+    """A planted 2-term conjunction is R1, described by exactly its two conditions."""
+    frame, errors = _depot()
+    found = sf.find_slices(frame, errors=errors, exclude=["parcel_id"])
+    assert "scanner = S3 and shift = night" == found.table.loc[0, "description"]
+    assert "R1" == found.table.loc[0, "slice_id"]
+    expected = np.flatnonzero(((frame["scanner"] == "S3") & (frame["shift"] == "night")).to_numpy())
+    assert expected.tolist() == found.rows("R1").tolist()
+    # its two single-item parents are folded into it, not listed beside it
+    assert "scanner = S3" not in set(found.table["description"])
+    assert {"scanner = S3", "shift = night"} == set(found.table.loc[0, "folded"].split("; "))
+
+
+def test_table_has_contract_columns_and_ranking():
+    """The table has the contract's columns, q <= fdr, and is sorted by excess errors."""
+    frame, errors = _depot()
+    found = sf.find_slices(frame, errors=errors, exclude=["parcel_id"])
+    assert list(TABLE_COLUMNS) == list(found.table.columns[:len(TABLE_COLUMNS)])
+    assert (found.table["q_value"] <= 0.05).all()
+    excess = found.table["excess_errors"].to_numpy()
+    assert np.all(np.diff(excess) <= 1e-9)
+    assert len(found.tested) >= len(found.table)
+    assert found.tested["passed"].sum() >= len(found.table)
+
+
+def test_null_data_passes_fdr_in_95_percent_of_seeds():
+    """With errors independent of every column, no rule passes fdr=0.05 in >= 95% of 50 seeds."""
+    clean = 0
+    for seed in range(50):
+        frame, errors = _depot(n=2000, seed=seed, planted=False)
+        found = sf.find_slices(frame, errors=errors, exclude=["parcel_id"])
+        clean += len(found.table) == 0
+    assert clean >= 48
+
+
+def test_refinement_must_be_worse_than_each_parent():
+    """Adding an unrelated condition to a planted slice does not yield a listed refinement."""
+    frame, errors = _depot()
+    found = sf.find_slices(frame, errors=errors, exclude=["parcel_id"])
+    listed = set(found.table["description"])
+    assert not any(d.startswith("scanner = S3 and shift = night and") for d in listed)
+    tested = found.tested.set_index("description")
+    assert not tested.loc["scanner = S3 and shift = night and label_stock = matte", "worse_than_parents"]
+
+
+def test_identical_rows_collapse_to_one_entry_with_alias():
+    """Two columns encoding the same rows give one slice, the other listed as its alias."""
+    frame, errors = _depot()
+    frame = frame.assign(lane=frame["scanner"].map({"S1": "L1", "S2": "L2", "S3": "L3", "S4": "L4"}))
+    found = sf.find_slices(frame, errors=errors, exclude=["parcel_id"])
+    top = found.table.loc[0]
+    assert top["description"] == "scanner = S3 and shift = night"
+    assert "shift = night and lane = L3" in top["aliases"].split("; ")
+    assert not (found.table["description"] == "shift = night and lane = L3").any()
+
+
+def test_rows_are_positions_whatever_the_index():
+    """rows() returns positions 0..n-1 even when the frame has a shuffled string index."""
+    frame, errors = _depot()
+    shuffled = frame.set_axis([f"k{i}" for i in np.random.default_rng(1).permutation(len(frame))])
+    a = sf.find_slices(frame, errors=errors, exclude=["parcel_id"])
+    b = sf.find_slices(shuffled, errors=errors, exclude=["parcel_id"])
+    assert a.rows("R1").tolist() == b.rows("R1").tolist()
+    assert np.issubdtype(b.rows("R1").dtype, np.integer)
+
+
+def test_rows_map_back_through_error_kind():
+    """With false negatives only, rows() still indexes the user's full frame."""
+    frame, errors = _depot(n=8000)
+    label = np.random.default_rng(2).integers(0, 2, len(frame))
+    pred = np.where(errors, 1 - label, label)
+    found = sf.find_slices(frame, label=label, prediction=pred, error_kind="false_negative",
+                           exclude=["parcel_id"])
+    rows = found.rows(found.table.loc[0, "slice_id"])
+    assert np.all(label[rows] == 1)
+    assert found.n_rows == int((label == 1).sum())
+
+
+def test_deterministic_for_a_given_input():
+    """Two runs on the same input give the same table."""
+    frame, errors = _depot()
+    a = sf.find_slices(frame, errors=errors, exclude=["parcel_id"])
+    b = sf.find_slices(frame, errors=errors, exclude=["parcel_id"])
+    pd.testing.assert_frame_equal(a.table, b.table)
+
+
+def test_engines_give_identical_tables():
+    """engine='mlxtend' and the bitset engine give the same table on the planted data."""
+    frame, errors = _depot()
+    a = sf.find_slices(frame, errors=errors, exclude=["parcel_id"])
+    b = sf.find_slices(frame, errors=errors, exclude=["parcel_id"], engine="mlxtend")
+    pd.testing.assert_frame_equal(a.table, b.table)
+    pd.testing.assert_frame_equal(a.tested, b.tested)
+
+
+def test_default_min_rows_finds_half_percent_slice():
+    """A slice of 0.5% of the rows (and >= 20 rows) can be found with the default min_rows."""
+    assert (20, 20, 50, 5000) == (default_min_rows(100), default_min_rows(4000),
+                                  default_min_rows(10_000), default_min_rows(1_000_000))
+    rng = np.random.default_rng(5)
+    n = 10_000
+    frame = pd.DataFrame({"station": rng.choice([f"st{i:02d}" for i in range(40)], n, replace=True)})
+    small = np.zeros(n, dtype=bool)
+    small[rng.choice(n, 50, replace=False)] = True      # exactly 0.5% of rows
+    frame.loc[small, "station"] = "st99"
+    errors = rng.random(n) < np.where(small, 0.6, 0.05)
+    found = sf.find_slices(frame, errors=errors)
+    assert "station = st99" == found.table.loc[0, "description"]
+
+
+def test_numeric_threshold_in_description():
+    """A planted threshold on a numeric column reads as 'belt_speed >= 2.1'."""
+    rng = np.random.default_rng(3)
+    n = 5000
+    frame = pd.DataFrame({"belt_speed": np.round(rng.uniform(0.5, 3.0, n), 3),
+                          "scanner": rng.choice(["S1", "S2"], n)})
+    errors = rng.random(n) < np.where(frame["belt_speed"] >= 2.1, 0.3, 0.04)
+    found = sf.find_slices(frame, errors=errors)
+    assert "belt_speed >= 2.1" == found.table.loc[0, "description"]
+
+
+def test_repr_and_html():
+    """The repr is short and stable; the notebook HTML holds the table."""
+    frame, errors = _depot()
+    found = sf.find_slices(frame, errors=errors, exclude=["parcel_id"])
+    assert repr(found).startswith(f"FoundSlices(n_slices={len(found.table)}, n_tested=")
+    html = found._repr_html_()
+    assert "<table" in html and "scanner = S3 and shift = night" in html
+
+
+def test_unknown_slice_id():
+    """rows() with an unknown id names it and lists the known ones."""
+    frame, errors = _depot()
+    found = sf.find_slices(frame, errors=errors, exclude=["parcel_id"])
+    with pytest.raises(sf.SlicefindValueError, match=r"slice_id='R99' is not in this result; known ids: R1"):
+        found.rows("R99")
+
+
+def test_overlap_is_jaccard():
+    """overlap() gives 1 on the diagonal and the Jaccard of row sets elsewhere."""
+    frame, errors = _depot()
+    found = sf.find_slices(frame, errors=errors, exclude=["parcel_id"], max_terms=1)
+    ov = found.overlap()
+    ids = list(found.table["slice_id"])
+    assert all(ov.loc[i, i] == 1.0 for i in ids)
+    if len(ids) >= 2:
+        a, b = set(found.rows(ids[0])), set(found.rows(ids[1]))
+        assert len(a & b) / len(a | b) == pytest.approx(ov.loc[ids[0], ids[1]])
+
+
+@pytest.mark.parametrize("kwargs, fragment", [
+    (dict(max_terms=0), "max_terms must be >= 1; got 0"),
+    (dict(max_terms=2.5), "max_terms must be an integer; got 2.5"),
+    (dict(min_rows=0), "min_rows must be >= 1; got 0"),
+    (dict(min_errors=-1), "min_errors must be >= 1; got -1"),
+    (dict(fdr=1.5), "fdr must be a number strictly between 0 and 1; got 1.5"),
+    (dict(confidence_level=0), "confidence_level must be a number strictly between 0 and 1; got 0"),
+    (dict(engine="fast"), "engine must be one of ('bitset', 'mlxtend'); got 'fast'"),
+    (dict(clusters="all"), "clusters must be one of ('both', 'regions', 'error_modes', 'none'); got 'all'"),
+    (dict(merge_jaccard=0), "merge_jaccard must be a number in (0, 1]; got 0"),
+    (dict(n_bins=0), "n_bins must be an integer >= 1; got 0"),
+])
+def test_bad_parameters_are_named(kwargs, fragment):
+    """Each public parameter given a bad value raises an error that names it."""
+    frame, errors = _depot(n=500)
+    with pytest.raises((sf.SlicefindValueError, sf.SlicefindTypeError)) as info:
+        sf.find_slices(frame, errors=errors, **kwargs)
+    assert fragment in str(info.value)

@@ -5,50 +5,74 @@ level so numba can cache the compiled code on disk (``cache=True``).
 """
 import numba
 import numpy as np
+from numba import types
+from numba.extending import intrinsic
 
 __all__ = ["count_extensions"]
 
-_M1 = np.uint64(0x5555555555555555)
-_M2 = np.uint64(0x3333333333333333)
-_M4 = np.uint64(0x0F0F0F0F0F0F0F0F)
-_H01 = np.uint64(0x0101010101010101)
-_BLOCK = 1024  # words per block: the prefix block (8 KB) and each extension's block stay in cache
+_BLOCK = 2048  # words per block: one block of every item bitset (16 KB each) stays in L2/L3
 
 
-@numba.njit(inline="always", cache=True)
-def _pop(x):
-    """Set bits of one uint64 (SWAR; LLVM lowers it to popcnt where the CPU has it)."""
-    x = x - ((x >> np.uint64(1)) & _M1)
-    x = (x & _M2) + ((x >> np.uint64(2)) & _M2)
-    x = (x + (x >> np.uint64(4))) & _M4
-    return (x * _H01) >> np.uint64(56)
+@intrinsic
+def _popcount(typingctx, x):
+    """LLVM's ctpop on a uint64: one popcnt (or vpopcntq once vectorised) where the CPU has it."""
+    sig = types.uint64(types.uint64)
+
+    def codegen(context, builder, signature, args):
+        return builder.ctpop(args[0])
+
+    return sig, codegen
 
 
 @numba.njit(parallel=True, cache=True, nogil=True)
 def count_extensions(bits, prefixes, offsets, extensions, counts):
-    """counts[e] = popcount(AND(bits[prefixes[p]]) & bits[extensions[e]]) for e in prefix p's range."""
+    """counts[e] += popcount(AND(bits[prefixes[p]]) & bits[extensions[e]]) for e in prefix p's range.
+
+    Cache-blocked: the outer loop walks blocks of words, so each block of the item
+    bitsets is read from memory once and reused by every candidate; threads split the
+    prefixes within a block. `counts` must start at zero.
+    """
     n_prefix, width = prefixes.shape
     n_w = bits.shape[1]
-    for p in numba.prange(n_prefix):
-        lo = offsets[p]
-        hi = offsets[p + 1]
-        if lo == hi:
-            continue
-        base = np.empty(_BLOCK, dtype=np.uint64)
-        for e in range(lo, hi):
-            counts[e] = 0
-        for start in range(0, n_w, _BLOCK):
-            size = min(_BLOCK, n_w - start)
-            row0 = bits[prefixes[p, 0]]
-            for w in range(size):
-                base[w] = row0[start + w]
+    for start in range(0, n_w, _BLOCK):
+        stop = min(start + _BLOCK, n_w)
+        for p in numba.prange(n_prefix):
+            lo = offsets[p]
+            hi = offsets[p + 1]
+            if lo == hi:
+                continue
+            base = bits[prefixes[p, 0], start:stop].copy()
             for j in range(1, width):
-                row = bits[prefixes[p, j]]
-                for w in range(size):
-                    base[w] &= row[start + w]
+                base &= bits[prefixes[p, j], start:stop]
             for e in range(lo, hi):
-                row = bits[extensions[e]]
-                total = np.uint64(0)
-                for w in range(size):
-                    total += _pop(base[w] & row[start + w])
-                counts[e] += np.int64(total)
+                row = bits[extensions[e], start:stop]
+                total = 0
+                for w in range(stop - start):
+                    total += _popcount(base[w] & row[w])
+                counts[e] += total
+
+
+@numba.njit(parallel=True, cache=True, nogil=True)
+def hypergeom_tails(x0, step, N, K, n, limit, first, out):
+    """out[i] = sum of hypergeometric pmf terms from x0[i] towards `limit[i]` (step +1 or -1).
+
+    `first[i]` is pmf(x0[i]); later terms follow from the ratio recursion and the sum
+    stops once a term adds less than 1e-17 of it (see `stats._hypergeom_sf`).
+    """
+    for i in numba.prange(x0.size):
+        x = x0[i]
+        term = first[i]
+        total = term
+        while term > total * 1e-17:
+            if step[i] > 0:
+                if x + 1.0 > limit[i]:
+                    break
+                term *= (K[i] - x) * (n[i] - x) / ((x + 1.0) * (N[i] - K[i] - n[i] + x + 1.0))
+                x += 1.0
+            else:
+                if x - 1.0 < limit[i]:
+                    break
+                term *= x * (N[i] - K[i] - n[i] + x) / ((K[i] - x + 1.0) * (n[i] - x + 1.0))
+                x -= 1.0
+            total += term
+        out[i] = total

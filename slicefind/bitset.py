@@ -27,9 +27,9 @@ __all__ = [
 ]
 
 WORD_BITS = 64
-#: below this many words per bitset the numpy kernel is used (numba's import and
-#: cache load cost more than they save on small tables)
-NUMBA_MIN_WORDS = 2048
+#: below this many words of work (candidates x words per bitset) the numpy kernel is
+#: used: numba's import and cache load (~0.5 s) cost more than they save
+NUMBA_MIN_WORDS = 1 << 24
 
 
 def n_words(n_rows: int) -> int:
@@ -93,12 +93,12 @@ def _count_numpy(bits, prefixes, offsets, extensions):
     return counts
 
 
-def _numba_kernel():
-    """The fused AND+popcount kernel (compiled on first use, then loaded from numba's disk cache)."""
+def _numba_kernels():
+    """The compiled kernels module (compiled on first use, then loaded from numba's disk cache)."""
     os.environ.setdefault("NUMBA_CACHE_DIR", _cache_dir())
     from slicefind import _kernels
 
-    return _kernels.count_extensions
+    return _kernels
 
 
 def _cache_dir() -> str:
@@ -122,7 +122,7 @@ def count_extensions(bits: np.ndarray, prefixes: np.ndarray, offsets: np.ndarray
     extensions : (E,) int array
         Item indices.
     engine : {"auto", "numba", "numpy"}, default="auto"
-        "auto" uses numba when bitsets are at least `NUMBA_MIN_WORDS` words long.
+        "auto" uses numba when the work (extensions x words) is at least `NUMBA_MIN_WORDS`.
 
     Returns
     -------
@@ -139,11 +139,11 @@ def count_extensions(bits: np.ndarray, prefixes: np.ndarray, offsets: np.ndarray
     offsets = np.ascontiguousarray(offsets, dtype=np.int64)
     extensions = np.ascontiguousarray(extensions, dtype=np.int64)
     if engine == "auto":
-        engine = "numba" if bits.shape[1] >= NUMBA_MIN_WORDS else "numpy"
+        engine = "numba" if extensions.size * bits.shape[1] >= NUMBA_MIN_WORDS else "numpy"
     if engine == "numpy" or extensions.size == 0:
         return _count_numpy(bits, prefixes, offsets, extensions)
     if engine != "numba":
         raise ValueError(f"engine must be 'auto', 'numba' or 'numpy'; got {engine!r}.")
     counts = np.zeros(extensions.size, dtype=np.int64)
-    _numba_kernel()(bits, prefixes, offsets, extensions, counts)
+    _numba_kernels().count_extensions(bits, prefixes, offsets, extensions, counts)
     return counts

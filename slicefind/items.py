@@ -103,7 +103,7 @@ def _fmt(x: float) -> str:
 
 
 class _Builder:
-    """Collects item masks and packs them in blocks (both all-row and error-row bitsets)."""
+    """Collects items and packs their masks (all-row and error-row bitsets)."""
 
     def __init__(self, errors: np.ndarray, min_rows: int, min_errors: int):
         self.errors = errors
@@ -111,19 +111,27 @@ class _Builder:
         self.min_errors = min_errors
         self.items: list[Item] = []
         self.cols: list[int] = []
-        self.masks: list[np.ndarray] = []
         self.seen: dict[tuple[int, int, int], list[int]] = {}
         self.bits: list[np.ndarray] = []
         self.error_bits: list[np.ndarray] = []
         self.n_rows: list[int] = []
         self.n_errors: list[int] = []
 
-    def add(self, item: Item, column_index: int, mask: np.ndarray) -> None:
-        n_rows = int(mask.sum())
-        if n_rows < self.min_rows or n_rows == mask.size:
-            return
-        n_errors = int(np.count_nonzero(mask & self.errors))
-        if n_errors < self.min_errors:
+    def wanted(self, n_rows: int, n_errors: int, n_total: int) -> bool:
+        """Whether an item with these counts can be part of any rule."""
+        return self.min_rows <= n_rows < n_total and n_errors >= self.min_errors
+
+    def add(self, item: Item, column_index: int, mask: np.ndarray,
+            error_mask: np.ndarray | None = None) -> None:
+        """Keep `item` unless it is too small or repeats the rows of an item of its column.
+
+        `error_mask` (the mask restricted to error rows) may be passed when cheaper to get.
+        """
+        n_rows = int(np.count_nonzero(mask))
+        if error_mask is None:
+            error_mask = mask[self.errors]
+        n_errors = int(np.count_nonzero(error_mask))
+        if not self.wanted(n_rows, n_errors, mask.size):
             return
         packed = bitset.pack(mask)[0]
         key = (column_index, n_rows, n_errors)
@@ -134,28 +142,34 @@ class _Builder:
         self.items.append(item)
         self.cols.append(column_index)
         self.bits.append(packed)
-        self.error_bits.append(bitset.pack(mask[self.errors])[0])
+        self.error_bits.append(bitset.pack(error_mask)[0])
         self.n_rows.append(n_rows)
         self.n_errors.append(n_errors)
 
 
 def _categorical_items(builder, column, index, series, min_rows):
     codes, uniques = pd.factorize(series, sort=True, use_na_sentinel=True)
+    codes = codes.astype(np.int32, copy=False)
+    error_codes = codes[builder.errors]
     counts = np.bincount(codes[codes >= 0], minlength=len(uniques))
+    error_counts = np.bincount(error_codes[error_codes >= 0], minlength=len(uniques))
     rare = [k for k in range(len(uniques)) if counts[k] < min_rows]
     for k in range(len(uniques)):
-        if counts[k] >= min_rows:
+        if builder.wanted(int(counts[k]), int(error_counts[k]), codes.size):
             value = uniques[k]
-            builder.add(Item(column, "=", value, f"{column} = {_format_value(value)}"), index, codes == k)
+            builder.add(Item(column, "=", value, f"{column} = {_format_value(value)}"), index,
+                        codes == k, error_codes == k)
     if len(rare) >= 2:
         values = tuple(uniques[k] for k in rare)
         shown = ", ".join(_format_value(v) for v in values[:3])
         more = f", … {len(values)} values" if len(values) > 3 else ""
         text = f"{column} in {{{shown}{more}}}"
-        builder.add(Item(column, "rare", values, text), index, np.isin(codes, rare))
+        builder.add(Item(column, "rare", values, text), index, np.isin(codes, rare),
+                    np.isin(error_codes, rare))
     missing = codes < 0
     if missing.any():
-        builder.add(Item(column, "missing", None, f"{column} is missing"), index, missing)
+        builder.add(Item(column, "missing", None, f"{column} is missing"), index, missing,
+                    error_codes < 0)
 
 
 def _split_score(n_left, e_left, n_node, e_node):

@@ -212,25 +212,30 @@ class _LevelIndex:
         return self.order[width - 1][pos]
 
 
-def refinement_pvalues(counts: RuleCounts, n_items: int) -> tuple[np.ndarray, ...]:
+def refinement_pvalues(counts: RuleCounts, n_items: int,
+                       evaluate: tuple[np.ndarray, ...] | None = None) -> tuple[np.ndarray, ...]:
     """Per level, the largest one-sided Fisher p-value of a rule against each of its parents.
 
     Within a parent's rows, the test asks whether the rule's rows err more often than
     the parent's other rows. Level-1 rules get 0 (their parent is the whole table and
-    is tested by the main p-value). A rule with the same rows as a parent gets 1.
+    is tested by the main p-value). A rule with the same rows as a parent gets 1. With
+    `evaluate` (per-level masks), only those rules are tested and the rest get NaN.
     """
     index = _LevelIndex(counts.levels, max(2, n_items))
     out = [np.zeros(len(counts.levels[0]))]
     for width in range(2, len(counts.levels) + 1):
         rules = counts.levels[width - 1]
-        k, r = counts.n_errors[width - 1], counts.n_rows[width - 1]
-        worst = np.zeros(len(rules))
+        pick = np.arange(len(rules)) if evaluate is None else np.flatnonzero(evaluate[width - 1])
+        k, r = counts.n_errors[width - 1][pick], counts.n_rows[width - 1][pick]
+        worst = np.zeros(pick.size)
         for drop in range(width):
-            idx = index.find(np.delete(rules, drop, axis=1))
+            idx = index.find(np.delete(rules[pick], drop, axis=1))
             kp, rp = counts.n_errors[width - 2][idx], counts.n_rows[width - 2][idx]
-            p = np.where(rp > r, fisher_greater(k, r, kp, rp), 1.0)
+            p = np.where(rp > r, fisher_greater(k, r, kp, rp), 1.0) if pick.size else worst
             worst = np.maximum(worst, p)
-        out.append(worst)
+        level = np.full(len(rules), np.nan)
+        level[pick] = worst
+        out.append(level)
     return tuple(out)
 
 
@@ -248,24 +253,27 @@ def fold_into_refinements(counts: RuleCounts, shown: tuple[np.ndarray, ...], n_i
     target = [np.full((len(level), 2), -1, dtype=np.int64) for level in counts.levels]
     rate = total_errors / total_rows
     for width in range(len(counts.levels), 1, -1):
-        rules = counts.levels[width - 1]
         show = np.flatnonzero(shown[width - 1])
         if show.size == 0:
             continue
-        best_excess = {}
-        for i in show:
-            k_r, r_r = counts.n_errors[width - 1][i], counts.n_rows[width - 1][i]
-            excess = k_r - r_r * rate
-            parents = index.find(np.stack([np.delete(rules[i], d) for d in range(width)]))
-            for j in parents:
-                if not shown[width - 2][j]:
-                    continue
-                k_p, r_p = counts.n_errors[width - 2][j], counts.n_rows[width - 2][j]
-                outside = fisher_greater(k_p - k_r, r_p - r_r, total_errors - k_r, total_rows - r_r)
-                if outside > alpha and excess > best_excess.get(j, (-np.inf,))[0]:
-                    best_excess[j] = (excess, i)
-        for j, (_, i) in best_excess.items():
-            final = (width - 1, i)
+        rules = counts.levels[width - 1][show]
+        subsets = np.stack([np.delete(rules, d, axis=1) for d in range(width)], axis=1)
+        parent = index.find(subsets.reshape(-1, width - 1))
+        child = np.repeat(show, width)
+        ok = shown[width - 2][parent]
+        child, parent = child[ok], parent[ok]
+        k_r, r_r = counts.n_errors[width - 1][child], counts.n_rows[width - 1][child]
+        k_p, r_p = counts.n_errors[width - 2][parent], counts.n_rows[width - 2][parent]
+        outside = np.atleast_1d(fisher_greater(k_p - k_r, r_p - r_r, total_errors - k_r,
+                                               total_rows - r_r))
+        ok = outside > alpha
+        child, parent = child[ok], parent[ok]
+        excess = k_r[ok] - r_r[ok] * rate
+        order = np.lexsort((child, -excess, parent))
+        parent, child = parent[order], child[order]
+        first = np.concatenate([[True], parent[1:] != parent[:-1]]) if parent.size else parent
+        for j, i in zip(parent[first], child[first]):
+            final = (width - 1, int(i))
             while target[final[0]][final[1], 0] >= 0:
                 final = tuple(target[final[0]][final[1]])
             target[width - 2][j] = final

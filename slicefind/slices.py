@@ -18,7 +18,7 @@ from slicefind import bitset
 from slicefind.items import ItemSet, build_items
 from slicefind.rules import (ENGINES, RuleCounts, fold_into_refinements, refinement_pvalues,
                              rule_bits, search_rules)
-from slicefind.stats import SCORE_COLUMNS, bh_qvalues, score_slices
+from slicefind.stats import SCORE_COLUMNS, bh_qvalues, fisher_greater, score_slices
 from slicefind.table import EvalTable, SlicefindTypeError, SlicefindValueError, build_eval_table
 
 __all__ = ["Slice", "FoundSlices", "find_slices", "TABLE_COLUMNS", "default_min_rows",
@@ -29,7 +29,8 @@ TABLE_COLUMNS = ("slice_id", "source", "description") + SCORE_COLUMNS + ("q_valu
 SOURCES = ("rule", "region", "error_mode")
 CLUSTER_CHOICES = ("both", "regions", "error_modes", "none")
 TESTED_COLUMNS = (("description", "source", "n_terms") + SCORE_COLUMNS
-                  + ("q_value", "passed", "worse_than_parents", "folded_into"))
+                  + ("q_value", "passed", "parent_p_value", "worse_than_parents", "folded_into",
+                     "explained_by"))
 
 
 @dataclass(frozen=True, repr=False)
@@ -178,12 +179,15 @@ def _check_params(n_rows, max_terms, min_rows, min_errors, fdr, confidence_level
 
 
 def _rule_candidates(items: ItemSet, counts: RuleCounts):
-    """Flatten the levels: (level, index, description) per rule, in search order."""
+    """Flatten the levels: (level, index) and the description of every rule, in search order."""
     where, text = [], []
+    texts = np.array([item.text for item in items.items] + [""], dtype=object)
     for width, level in enumerate(counts.levels, start=1):
-        for i, terms in enumerate(level):
-            where.append((width - 1, i))
-            text.append(" and ".join(items.items[t].text for t in terms))
+        where += [(width - 1, i) for i in range(len(level))]
+        joined = texts[level[:, 0]] if len(level) else np.array([], dtype=object)
+        for j in range(1, width):
+            joined = joined + " and " + texts[level[:, j]]
+        text += list(joined)
     return where, text
 
 
@@ -308,30 +312,11 @@ def find_slices(
     rule_rows = np.concatenate(counts.n_rows) if n_rules else np.zeros(0, np.int64)
     rule_errs = np.concatenate(counts.n_errors) if n_rules else np.zeros(0, np.int64)
 
-    scores = score_slices(rule_rows, rule_errs, n, k_total, confidence_level=confidence_level)
-    q = bh_qvalues(scores["p_value"])
-    passed = q <= fdr
-    parent_p = np.concatenate(refinement_pvalues(counts, len(items))) if n_rules else np.zeros(0)
-    cutoff = _bh_cutoff(scores["p_value"], q, fdr)
-    worse = parent_p <= cutoff
-    shown_flat = passed & worse
-    splits = np.cumsum([len(level) for level in counts.levels])[:-1]
-    shown = tuple(np.split(shown_flat, splits)) if n_rules else ()
-    folded = fold_into_refinements(counts, shown, len(items), n, k_total, cutoff) if n_rules else []
-    folded_flat = np.concatenate(folded) if n_rules else np.zeros((0, 2), np.int64)
-    offsets = np.concatenate([[0], np.cumsum([len(level) for level in counts.levels])]).astype(int)
-    folded_into = np.where(folded_flat[:, 0] >= 0,
-                           offsets[np.maximum(folded_flat[:, 0], 0)] + folded_flat[:, 1], -1)
-    visible = shown_flat & (folded_into < 0)
-
     tested = pd.DataFrame({"description": text, "source": "rule",
-                           "n_terms": [w + 1 for w, _ in where]})
+                           "n_terms": np.array([w + 1 for w, _ in where], dtype=np.int64)})
+    scores = score_slices(rule_rows, rule_errs, n, k_total, confidence_level=confidence_level)
     for column in SCORE_COLUMNS:
         tested[column] = scores[column]
-    tested["q_value"] = q
-    tested["passed"] = passed
-    tested["worse_than_parents"] = worse
-    tested["folded_into"] = [text[j] if j >= 0 else "" for j in folded_into]
 
     # clusters (when embeddings are given) join the same family of tests
     cluster_extra: dict[str, Any] = {}
@@ -348,52 +333,59 @@ def find_slices(
         ex_errs = np.array([int(table.errors[sl.rows].sum()) for sl in extra_slices], dtype=np.int64)
         ex_scores = score_slices(ex_rows, ex_errs, n, k_total, confidence_level=confidence_level)
         ex_frame = pd.DataFrame({"description": [sl.description for sl in extra_slices],
-                                 "source": [sl.source for sl in extra_slices], "n_terms": 0})
+                                 "source": [sl.source for sl in extra_slices],
+                                 "n_terms": np.zeros(len(extra_slices), dtype=np.int64)})
         for column in SCORE_COLUMNS:
             ex_frame[column] = ex_scores[column]
-        ex_frame["worse_than_parents"] = True
-        ex_frame["folded_into"] = ""
-        tested = pd.concat([tested.drop(columns=["q_value", "passed"]), ex_frame], ignore_index=True)
-        all_p = tested["p_value"].to_numpy()
-        q = bh_qvalues(all_p)
-        tested["q_value"] = q
-        tested["passed"] = q <= fdr
-        tested = tested[list(TESTED_COLUMNS)]
-        # the rules' filters used rule-only q-values; redo them on the joint family
-        passed_rules = q[:n_rules] <= fdr
-        cutoff = _bh_cutoff(all_p, q, fdr)
-        worse = parent_p <= cutoff
-        tested.loc[:n_rules - 1, "worse_than_parents"] = worse
-        shown_flat = passed_rules & worse
-        shown = tuple(np.split(shown_flat, splits)) if n_rules else ()
-        folded = fold_into_refinements(counts, shown, len(items), n, k_total, cutoff) if n_rules else []
-        folded_flat = np.concatenate(folded) if n_rules else np.zeros((0, 2), np.int64)
-        folded_into = np.where(folded_flat[:, 0] >= 0,
-                               offsets[np.maximum(folded_flat[:, 0], 0)] + folded_flat[:, 1], -1)
-        visible = shown_flat & (folded_into < 0)
-        tested.loc[:n_rules - 1, "folded_into"] = [text[j] if j >= 0 else "" for j in folded_into]
+        tested = pd.concat([tested, ex_frame], ignore_index=True)
 
-    # candidates that stay: rows, near-duplicate merging, ranking
-    cand_idx = list(np.flatnonzero(visible))
-    rows_of: dict[int, np.ndarray] = {}
-    for idx in cand_idx:
-        width, i = where[idx]
-        rows_of[idx] = bitset.to_rows(rule_bits(items.bits, counts.levels[width][i:i + 1]), n)
-    q_all = tested["q_value"].to_numpy()
-    for j, sl in enumerate(extra_slices):
-        if q_all[n_rules + j] <= fdr:
-            cand_idx.append(n_rules + j)
-            rows_of[n_rules + j] = sl.rows
-    excess = tested["excess_errors"].to_numpy()
     p_all = tested["p_value"].to_numpy()
-    terms = tested["n_terms"].to_numpy()
+    q = bh_qvalues(p_all)
+    passed = q <= fdr
+    cutoff = _bh_cutoff(p_all, q, fdr)
+    # rules: a refinement must be worse than each parent; parents explained by a
+    # refinement fold into it (both at the table's BH cutoff)
+    worse = np.ones(len(tested), dtype=bool)
+    parent_p = np.zeros(len(tested))
+    folded_into = np.full(len(tested), -1, dtype=np.int64)
+    if n_rules:
+        splits = np.cumsum([len(level) for level in counts.levels])[:-1]
+        # only rules that pass are tested against their parents (NaN elsewhere)
+        parent_p[:n_rules] = np.concatenate(refinement_pvalues(
+            counts, len(items), tuple(np.split(passed[:n_rules], splits))))
+        worse[:n_rules] = parent_p[:n_rules] <= cutoff
+        shown = tuple(np.split(passed[:n_rules] & worse[:n_rules], splits))
+        folded = np.concatenate(fold_into_refinements(counts, shown, len(items), n, k_total, cutoff))
+        offsets = np.concatenate([[0], np.cumsum([len(level) for level in counts.levels])])
+        folded_into[:n_rules] = np.where(folded[:, 0] >= 0,
+                                         offsets[np.maximum(folded[:, 0], 0)] + folded[:, 1], -1)
+    tested["q_value"] = q
+    tested["passed"] = passed
+    tested["parent_p_value"] = parent_p
+    tested["worse_than_parents"] = worse
     descriptions = tested["description"].tolist()
-    order = sorted(cand_idx, key=lambda i: (-excess[i], i >= n_rules, terms[i], p_all[i], descriptions[i]))
-    kept, aliases = _merge_near_duplicates(order, rows_of, n, n_rules, merge_jaccard, descriptions)
-    folded_names = {idx: [] for idx in kept}
+    tested["folded_into"] = [descriptions[j] if j >= 0 else "" for j in folded_into]
+    eligible = np.flatnonzero(passed & worse & (folded_into < 0))
+
+    def bits_of(idx: int) -> np.ndarray:
+        if idx < n_rules:
+            width, i = where[idx]
+            return rule_bits(items.bits, counts.levels[width][i:i + 1])[0]
+        mask = np.zeros(n, dtype=bool)
+        mask[extra_slices[idx - n_rules].rows] = True
+        return bitset.pack(mask)[0]
+
+    excess = tested["excess_errors"].to_numpy()
+    terms = tested["n_terms"].to_numpy()
+    order = sorted(eligible.tolist(), key=lambda i: (-excess[i], i >= n_rules, terms[i], p_all[i],
+                                                     descriptions[i]))
+    kept, kept_bits, aliases, explained = _select(
+        order, bits_of, tested["n_rows"].to_numpy(), n_rules, bitset.pack(table.errors)[0],
+        n, k_total, fdr, len(tested), merge_jaccard, descriptions)
+    folded_names: dict[int, list[str]] = {idx: [] for idx in kept}
     for j in np.flatnonzero(folded_into >= 0):
-        if folded_into[j] in folded_names and shown_flat[j]:
-            folded_names[folded_into[j]].append(text[j])
+        if folded_into[j] in folded_names:
+            folded_names[folded_into[j]].append(descriptions[j])
 
     source_col = tested["source"].to_numpy()
     ids, counter = [], {"R": 0, "C": 0}
@@ -401,6 +393,10 @@ def find_slices(
         prefix = "R" if source_col[idx] == "rule" else "C"
         counter[prefix] += 1
         ids.append(f"{prefix}{counter[prefix]}")
+    id_of = dict(zip(kept, ids))
+    tested["explained_by"] = ""
+    for idx, by in explained.items():
+        tested.loc[idx, "explained_by"] = ", ".join(id_of[j] for j in by)
     tested["slice_id"] = ""
     tested.loc[kept, "slice_id"] = ids
     out = tested.loc[kept].reset_index(drop=True)
@@ -413,7 +409,7 @@ def find_slices(
     out["folded"] = ["; ".join(folded_names[i]) for i in kept]
     table_df = out[list(TABLE_COLUMNS) + ["n_terms", "aliases", "folded"]]
     table_df = table_df.astype({"n_rows": np.int64, "n_errors": np.int64, "n_terms": np.int64})
-    slice_rows = {sid: table.positions[rows_of[i]] for sid, i in zip(ids, kept)}
+    slice_rows = {sid: table.positions[bitset.to_rows(b, n)] for sid, b in zip(ids, kept_bits)}
 
     params = dict(max_terms=max_terms, min_rows=min_rows, min_errors=min_errors, fdr=fdr,
                   confidence_level=confidence_level, engine=engine, error_kind=error_kind,
@@ -435,39 +431,58 @@ def _bh_cutoff(p: np.ndarray, q: np.ndarray, fdr: float) -> float:
     return float(passed.max()) if passed.size else 0.0
 
 
-def _merge_near_duplicates(order, rows_of, n_rows, n_rules, threshold, descriptions):
-    """Greedy merge in rank order: a candidate whose rows overlap a kept one at Jaccard >=
-    `threshold` becomes its alias; when a rule meets a kept cluster, the rule becomes the
-    main entry. Returns (kept indices in rank order, aliases per kept index)."""
+def _select(order, bits_of, n_rows, n_rules, error_bits, total_rows, total_errors, fdr,
+            n_tested, threshold, descriptions):
+    """Greedy pass in rank order over the eligible candidates.
+
+    A candidate whose rows overlap a kept slice at Jaccard >= `threshold` becomes that
+    slice's alias (a rule meeting a kept cluster takes its place as the main entry). A
+    candidate whose rows outside every kept slice are not significantly worse than the
+    rows outside them (one-sided Fisher at `cutoff`) is *explained by* the kept slices
+    it overlaps and is left out of the table. Returns (kept indices, their bitsets,
+    aliases per kept index, explained index -> kept indices).
+    """
     kept: list[int] = []
+    kept_bits: list[np.ndarray] = []
     aliases: dict[int, list[str]] = {}
-    packed: dict[int, np.ndarray] = {}
-    sizes: dict[int, int] = {}
+    explained: dict[int, list[int]] = {}
+    union = np.zeros_like(error_bits)
+    union_rows = union_errors = 0
     for idx in order:
-        rows = rows_of[idx]
-        mask = np.zeros(n_rows, dtype=bool)
-        mask[rows] = True
-        bits = bitset.pack(mask)[0]
-        size = rows.size
+        bits = bits_of(idx)
+        size = int(n_rows[idx])
         twin = None
-        for j in kept:
-            small, large = min(size, sizes[j]), max(size, sizes[j])
-            if small < threshold * large:       # Jaccard <= small / large
+        for pos, j in enumerate(kept):
+            other = int(n_rows[j])
+            if min(size, other) < threshold * max(size, other):   # Jaccard <= small / large
                 continue
-            inter = int(np.bitwise_count(bits & packed[j]).sum())
-            if inter / (size + sizes[j] - inter) >= threshold:
-                twin = j
+            inter = int(np.bitwise_count(bits & kept_bits[pos]).sum())
+            if inter / (size + other - inter) >= threshold:
+                twin = pos
                 break
-        if twin is None:
-            kept.append(idx)
-            aliases[idx] = []
-            packed[idx], sizes[idx] = bits, size
-        elif idx < n_rules <= twin:           # a rule explains a kept cluster: swap roles
-            pos = kept.index(twin)
-            kept[pos] = idx
-            aliases[idx] = [descriptions[twin]] + aliases.pop(twin)
-            packed[idx], sizes[idx] = bits, size
-            rows_of[idx] = rows
-        else:
-            aliases[twin].append(descriptions[idx])
-    return kept, aliases
+        if twin is not None:
+            j = kept[twin]
+            if idx < n_rules <= j:          # a rule explains a kept cluster: swap roles
+                kept[twin], kept_bits[twin] = idx, bits
+                aliases[idx] = [descriptions[j]] + aliases.pop(j)
+            else:
+                aliases[j].append(descriptions[idx])
+            continue
+        if kept:
+            outside = bits & ~union
+            r_out = int(np.bitwise_count(outside).sum())
+            k_out = int(np.bitwise_count(outside & error_bits).sum())
+            p = fisher_greater(k_out, r_out, total_errors - union_errors, total_rows - union_rows)
+            # the k-th slice shown must meet BH's threshold for k discoveries among
+            # everything tested, on its rows outside the slices above it
+            if r_out == 0 or p > fdr * (len(kept) + 1) / n_tested:
+                explained[idx] = [j for pos, j in enumerate(kept)
+                                  if np.bitwise_count(bits & kept_bits[pos]).sum() > 0]
+                continue
+        kept.append(idx)
+        kept_bits.append(bits)
+        aliases[idx] = []
+        union |= bits
+        union_rows = int(np.bitwise_count(union).sum())
+        union_errors = int(np.bitwise_count(union & error_bits).sum())
+    return kept, kept_bits, aliases, explained

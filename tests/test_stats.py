@@ -130,3 +130,29 @@ def test_score_slices_columns():
     assert [5.0, 15.0] == pytest.approx(s["excess_errors"].tolist())
     assert [0.06, 0.2] == pytest.approx(s["error_share"].tolist())
     assert 6.380389e-9 == pytest.approx(s["p_value"][1], rel=1e-6)   # REFERENCES.md §2
+
+
+@given(st.integers(1, 400).flatmap(lambda N: st.tuples(
+    st.just(N), st.integers(0, N), st.integers(0, N), st.integers(-2, N + 2))))
+def test_fisher_tail_matches_scipy_hypergeom(args):
+    """The summed hypergeometric tail equals scipy.stats.hypergeom.sf(a - 1, N, K, n)."""
+    from scipy.stats import hypergeom
+    N, K, n, a = args
+    expected = float(hypergeom.sf(a - 1, N, K, n))                  # scipy 1.17
+    assert expected == pytest.approx(fisher_greater(a, n, K, N), rel=1e-9, abs=1e-15)
+
+
+def test_fisher_tail_large_table_matches_scipy_and_exact_sum():
+    """On million-row slices the tail agrees with exact rational arithmetic and scipy to 5e-9."""
+    from math import comb
+
+    from scipy.stats import hypergeom
+    n = np.array([5_000, 52_421, 400_000, 15_645])
+    k = np.array([420, 4_151, 30_100, 4_702])
+    got = fisher_greater(k, n, 75_000, 1_000_000)
+    expected = hypergeom.sf(k - 1, 1_000_000, 75_000, n)            # scipy 1.17
+    assert np.allclose(expected, got, rtol=5e-9, atol=1e-300)
+    # the first tail summed exactly with Python integers (hand formula, no library)
+    exact = Fraction(sum(comb(75_000, x) * comb(925_000, 5_000 - x) for x in range(420, 5_001)),
+                     comb(1_000_000, 5_000))
+    assert float(exact) == pytest.approx(got[0], rel=5e-9)

@@ -19,6 +19,7 @@ __all__ = [
     "wilson_interval_fpc",
     "stratified_proportion",
     "mover_sum_interval",
+    "score_sum_interval",
     "stratified_interval",
     "cochran_sample_size",
 ]
@@ -387,24 +388,121 @@ def mover_sum_interval(estimates, lows, highs, weights):
     return low, high
 
 
+def _constrained_proportions(a, p):
+    """Root in [0, 1] of ``p - x = a x (1 - x)``: a stratum's proportion under the constraint
+    of `score_sum_interval` (``a = lambda W m``; ``a = 0`` gives ``p``). Vectorised."""
+    a = np.asarray(a, dtype=np.float64)
+    p = np.asarray(p, dtype=np.float64)
+    # a x^2 - (a + 1) x + p = 0, solved the stable way; f(0) = p >= 0 and f(1) = p - 1 <= 0
+    b = -(a + 1.0)
+    root_d = np.sqrt(np.maximum(b * b - 4.0 * a * p, 0.0))
+    q = -0.5 * (b + np.copysign(root_d, b))
+    with np.errstate(divide="ignore", invalid="ignore"):
+        r1 = np.where(a != 0, q / np.where(a != 0, a, 1.0), np.inf)
+        r2 = np.where(q != 0, p / np.where(q != 0, q, 1.0), 0.0)
+        zero_p = np.where(a < -1.0, 1.0 + 1.0 / np.where(a != 0, a, 1.0), 0.0)
+        one_p = np.where(a > 1.0, 1.0 / np.where(a != 0, a, 1.0), 1.0)
+    x = np.where((r1 > 0) & (r1 < 1), r1, r2)
+    x = np.where(p <= 0, zero_p, np.where(p >= 1, one_p, x))
+    return np.clip(np.where(a == 0, p, x), 0.0, 1.0)
+
+
+def score_sum_interval(k, n, N, weights, *, confidence_level: float = 0.95):
+    """Score interval for a weighted sum of proportions of strata sampled without replacement.
+
+    Inverts the score test of ``sum_h w_h pi_h = P``: ``P`` is inside when
+    ``(sum_h w_h p_h - P)^2 <= z^2 sum_h w_h^2 pi_h (1 - pi_h) / n*_h`` with ``pi_h`` the
+    stratum proportions that maximise the binomial likelihood (at the effective sizes
+    ``n*_h = n_h (N_h - 1) / (N_h - n_h)``) subject to the constraint. This is Wilson's
+    construction carried over to a weighted sum, as Miettinen & Nurminen (1985) did for a
+    difference of two proportions; for one stratum it is `wilson_interval_fpc`. The
+    constrained proportions solve ``p_h - pi_h = lambda w_h pi_h (1 - pi_h) / n*_h`` for a
+    common ``lambda``, so each bound is one root search over ``lambda``. Census strata stay
+    at their observed proportion.
+
+    Parameters
+    ----------
+    k, n, N : array of int
+        Per stratum: sampled units with the property, sampled units (``>= 1``), units.
+    weights : array of float
+        ``w_h >= 0`` (for a share of all units, ``N_h / total``).
+    confidence_level : float, default=0.95
+
+    Returns
+    -------
+    low, high : float
+
+    References
+    ----------
+    .. [1] O. Miettinen and M. Nurminen, "Comparative analysis of two rates", Stat. Med. 4
+           (1985) 213-226 (the constrained-MLE score interval; recalled).
+    .. [2] E. B. Wilson, J. Amer. Statist. Assoc. 22 (1927) 209-212.
+
+    Examples
+    --------
+    >>> low, high = score_sum_interval([24, 5, 3], [30, 20, 25], [120, 60, 220], [0.3, 0.15, 0.55])
+    >>> print(f"{low:.4f} {high:.4f}")
+    0.2761 0.4430
+    """
+    from scipy import optimize
+
+    k = np.asarray(k, dtype=np.float64)
+    n = np.asarray(n, dtype=np.float64)
+    N = np.asarray(N, dtype=np.float64)
+    w = np.asarray(weights, dtype=np.float64)
+    p = k / n
+    m = _fpc_inverse_n(n, N)                       # 1/n*: 0 for a census
+    estimate = float(np.sum(w * p))
+    z2 = z_value(confidence_level) ** 2
+
+    def statistic(lam):
+        pi = _constrained_proportions(lam * w * m, p)
+        variance = float(np.sum(w * w * m * pi * (1.0 - pi)))
+        gap = estimate - float(np.sum(w * pi))
+        if variance <= 0.0:
+            return np.inf if abs(gap) > 1e-15 else 0.0
+        return gap * gap / variance
+
+    def bound(sign):
+        top = 1.0
+        while statistic(sign * top) < z2:          # widen the bracket; the limit is the edge
+            top *= 4.0
+            if top > 1e15:
+                return float(np.sum(w * _constrained_proportions(sign * top * w * m, p)))
+        lam = optimize.brentq(lambda x: statistic(sign * x) - z2, 0.0, top, xtol=1e-300, rtol=1e-13)
+        return float(np.sum(w * _constrained_proportions(sign * lam * w * m, p)))
+
+    low = bound(1.0) if np.any((k > 0) & (m > 0)) else estimate
+    high = bound(-1.0) if np.any((k < n) & (m > 0)) else estimate
+    return min(low, estimate), max(high, estimate)
+
+
 def stratified_interval(k, n, N, *, confidence_level: float = 0.95):
     """Estimate and confidence interval of a proportion over strata sampled without replacement.
 
-    Each stratum gets a Wilson interval with finite-population correction
-    (`wilson_interval_fpc`); MOVER (`mover_sum_interval`) combines them with weights
-    ``W_h = N_h / sum(N)``. The interval stays in [0, 1], is 0 at its lower end when no
-    unit has the property and 1 at its upper end when all do, and shrinks to the point for
-    a census. Strata with nothing sampled (``n_h == 0``) are unknown, not zero: the lower
-    limit takes them as holding none and the upper as holding all (worst-case bounds,
-    Manski 1989), and the estimate re-weights the sampled strata to the whole
-    (a weighting-class adjustment: unsampled strata are taken to look like the sampled ones).
+    The estimate is the stratified one, ``sum_h W_h p_h`` with ``W_h = N_h / sum(N)``. The
+    interval is the union of two large-sample intervals for a weighted sum of proportions,
+    both of which reduce to `wilson_interval_fpc` for a single stratum: MOVER over
+    per-stratum Wilson limits with finite-population correction (`mover_sum_interval`, Zou,
+    Huang & Zhang 2009) and the score interval (`score_sum_interval`). In slicefind's
+    simulated reviews (``benchmarks/bench_coverage.py``) MOVER alone covers too rarely for a
+    rare category spread over many strata (its lower limit sits too high) and the score
+    interval alone for a category concentrated in one stratum; their union kept 95%
+    intervals at or above about 94% coverage in every case tried, at a few percent more width.
+
+    The interval stays in [0, 1], is 0 at its lower end when no unit has the property and 1
+    at its upper end when all do, and shrinks to the point for a census. Strata with nothing
+    sampled (``n_h == 0``) are unknown, not zero: the lower limit takes them as holding none
+    and the upper as holding all (worst-case bounds, Manski 1989), and the estimate
+    re-weights the sampled strata to the whole (a weighting-class adjustment: unsampled strata
+    are taken to look like the sampled ones).
 
     Parameters
     ----------
     k, n, N : array of int
         Per stratum: sampled units with the property, sampled units, units (``N_h >= 1``).
     confidence_level : float, default=0.95
-        Two-sided coverage of each stratum's interval, in (0, 1).
+        Two-sided coverage, in (0, 1).
 
     Returns
     -------
@@ -413,18 +511,21 @@ def stratified_interval(k, n, N, *, confidence_level: float = 0.95):
 
     References
     ----------
-    .. [1] G. Y. Zou and A. Donner, Stat. Med. 27 (2008) 1693-1702 (MOVER; recalled).
-    .. [2] C. F. Manski, "Anatomy of the selection problem", J. Human Resources 24 (1989)
+    .. [1] G. Y. Zou, W. Huang and X. Zhang, Comput. Stat. Data Anal. 53 (2009) 1080-1085
+           (MOVER with Wilson limits for a linear function of proportions; recalled).
+    .. [2] O. Miettinen and M. Nurminen, Stat. Med. 4 (1985) 213-226 (score intervals with
+           the constrained MLE; recalled).
+    .. [3] C. F. Manski, "Anatomy of the selection problem", J. Human Resources 24 (1989)
            343-360 (worst-case bounds for missing outcomes; recalled).
 
     Examples
     --------
     >>> est, low, high = stratified_interval([24, 5, 3], [30, 20, 25], [120, 60, 220])
     >>> print(f"{est:.4f} {low:.4f} {high:.4f}")
-    0.3435 0.2798 0.4436
+    0.3435 0.2761 0.4436
     >>> est, low, high = stratified_interval([24, 5, 0], [30, 20, 0], [120, 60, 220])
     >>> print(f"{est:.4f} {low:.4f} {high:.4f}")   # the 220-error stratum not yet reviewed
-    0.6167 0.2295 0.8667
+    0.6167 0.2287 0.8677
     """
     k = np.asarray(k, dtype=np.float64)
     n = np.asarray(n, dtype=np.float64)
@@ -433,17 +534,20 @@ def stratified_interval(k, n, N, *, confidence_level: float = 0.95):
     seen = n > 0
     if not seen.any():
         return float("nan"), 0.0, 1.0
-    lo, hi = wilson_interval_fpc(k[seen], n[seen], N[seen], confidence_level=confidence_level)
-    p = k[seen] / n[seen]
-    low, high = mover_sum_interval(p, lo, hi, w[seen])
+    k_s, n_s, N_s, w_s = k[seen], n[seen], N[seen], w[seen]
+    lo, hi = wilson_interval_fpc(k_s, n_s, N_s, confidence_level=confidence_level)
+    p = k_s / n_s
+    mover_low, mover_high = mover_sum_interval(p, lo, hi, w_s)
+    score_low, score_high = score_sum_interval(k_s, n_s, N_s, w_s, confidence_level=confidence_level)
+    low, high = min(mover_low, score_low), max(mover_high, score_high)
     unknown = float(w[~seen].sum())
-    known = float(w[seen].sum())
-    estimate = float(np.sum(w[seen] * p)) / known
+    known = float(w_s.sum())
+    estimate = float(np.sum(w_s * p)) / known
     low = min(max(low, 0.0), 1.0)
     high = min(max(high + unknown, 0.0), 1.0)
-    if np.all(k[seen] == 0):
+    if np.all(k_s == 0):
         low = 0.0
-    if np.all(k[seen] == n[seen]) and unknown == 0.0:
+    if np.all(k_s == n_s) and unknown == 0.0:
         high = 1.0
     return estimate, low, high
 

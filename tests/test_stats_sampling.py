@@ -10,7 +10,8 @@ from scipy import optimize
 from scipy.stats import norm
 from statsmodels.stats.proportion import proportion_confint, samplesize_confint_proportion
 
-from slicefind.stats import (cochran_sample_size, mover_sum_interval, stratified_interval,
+from slicefind.stats import (cochran_sample_size, mover_sum_interval, score_sum_interval,
+                             stratified_interval,
                              stratified_proportion, wilson_interval, wilson_interval_fpc, z_value)
 
 
@@ -191,14 +192,63 @@ def test_stratified_interval_unknown_stratum_is_bounded_by_none_and_all():
     """An unreviewed stratum adds 0 to the lower bound and its whole weight to the upper."""
     known = stratified_interval([24, 5], [30, 20], [120, 60])
     est, low, high = stratified_interval([24, 5, 0], [30, 20, 0], [120, 60, 220])
-    w_known, w_unknown = 180 / 400, 220 / 400
-    lo_k, hi_k = mover_sum_interval([0.8, 0.25], *[np.array(b) for b in
-                                    wilson_interval_fpc([24, 5], [30, 20], [120, 60])],
-                                    [120 / 400, 60 / 400])
+    weights = [120 / 400, 60 / 400]
+    lo_m, hi_m = mover_sum_interval([0.8, 0.25], *wilson_interval_fpc([24, 5], [30, 20], [120, 60]),
+                                    weights)
+    lo_s, hi_s = score_sum_interval([24, 5], [30, 20], [120, 60], weights)
     assert known[0] == pytest.approx(est, abs=1e-12)          # re-weighted to the reviewed strata
-    assert lo_k == pytest.approx(low, abs=1e-12)
-    assert hi_k + w_unknown == pytest.approx(high, abs=1e-12)
-    assert w_known * known[0] <= est
+    assert min(lo_m, lo_s) == pytest.approx(low, abs=1e-12)
+    assert max(hi_m, hi_s) + 220 / 400 == pytest.approx(high, abs=1e-12)
+
+
+def test_stratified_interval_is_union_of_mover_and_score():
+    """Case A (REFERENCES §6): the interval is the union of the MOVER and score limits."""
+    k, n, N = [24, 5, 3], [30, 20, 25], [120, 60, 220]
+    w = np.array(N) / 400
+    lo_m, hi_m = mover_sum_interval(np.array(k) / n, *wilson_interval_fpc(k, n, N), w)
+    lo_s, hi_s = score_sum_interval(k, n, N, w)
+    est, low, high = stratified_interval(k, n, N)
+    assert (0.3435, min(lo_m, lo_s), max(hi_m, hi_s)) == pytest.approx((est, low, high), abs=5e-5)
+
+
+@pytest.mark.parametrize("k, n, N", [(4, 10, 12), (0, 10, 100), (10, 10, 100), (3, 15, 10**9)])
+def test_score_sum_single_stratum_is_wilson_fpc(k, n, N):
+    """For one stratum of weight 1 the score interval is the Wilson-FPC interval."""
+    assert wilson_interval_fpc(k, n, N) == pytest.approx(score_sum_interval([k], [n], [N], [1.0]),
+                                                         abs=1e-9)
+
+
+@pytest.mark.parametrize("k, n, N", [([24, 5, 3], [30, 20, 25], [120, 60, 220]),
+                                     ([0, 4, 1], [10, 12, 9], [50, 40, 300]),
+                                     ([10, 2], [10, 15], [200, 15])])
+def test_score_sum_bounds_solve_the_constrained_score_test(k, n, N):
+    """At each bound, the score statistic with the constrained MLE (found by scipy SLSQP) is z^2."""
+    k, n, N = (np.array(x, dtype=float) for x in (k, n, N))
+    w = N / N.sum()
+    n_star = np.where(n < N, n * (N - 1) / np.maximum(N - n, 1e-300), np.inf)
+    p = k / n
+    free = np.isfinite(n_star)
+
+    def statistic(P):
+        def nll(x):
+            pi = p.copy()
+            pi[free] = x
+            pi = np.clip(pi, 1e-12, 1 - 1e-12)
+            return -np.sum(n_star[free] * (p[free] * np.log(pi[free]) + (1 - p[free]) * np.log(1 - pi[free])))
+        cons = {"type": "eq", "fun": lambda x: np.sum(w[free] * x) + np.sum(w[~free] * p[~free]) - P}
+        fit = optimize.minimize(nll, np.clip(p[free], 0.01, 0.99), constraints=[cons],
+                                bounds=[(1e-9, 1 - 1e-9)] * int(free.sum()), method="SLSQP",
+                                options={"ftol": 1e-14, "maxiter": 500})
+        pi = p.copy()
+        pi[free] = fit.x
+        v = np.sum((w ** 2 * pi * (1 - pi))[free] / n_star[free])
+        return (np.sum(w * p) - P) ** 2 / v
+
+    low, high = score_sum_interval(k, n, N, w)
+    z2 = z_value(0.95) ** 2
+    for bound in (low, high):
+        if 0.0 < bound < 1.0 and bound != pytest.approx(np.sum(w * p)):
+            assert z2 == pytest.approx(statistic(bound), rel=1e-4)
 
 
 def test_stratified_interval_nothing_reviewed():
@@ -207,15 +257,19 @@ def test_stratified_interval_nothing_reviewed():
     assert math.isnan(est) and (0.0, 1.0) == (low, high)
 
 
-@settings(max_examples=300, deadline=None)
+@settings(max_examples=150, deadline=None)
 @given(st.lists(st.integers(1, 300).flatmap(
     lambda N: st.integers(0, N).flatmap(lambda n: st.tuples(st.integers(0, n), st.just(n), st.just(N)))),
     min_size=1, max_size=6))
 def test_stratified_interval_properties(strata):
-    """Bounds in [0, 1] around the estimate; no tag at all gives low 0."""
+    """Bounds in [0, 1] around the estimate, containing the score interval; no tag gives low 0."""
     k, n, N = (np.array(x) for x in zip(*strata))
     est, low, high = stratified_interval(k, n, N)
     assert 0.0 <= low <= high <= 1.0
+    seen = n > 0
+    if seen.any():
+        s_low, s_high = score_sum_interval(k[seen], n[seen], N[seen], N[seen] / N.sum())
+        assert low <= s_low + 1e-12 and s_high <= high + 1e-12
     if (n > 0).any():
         assert low - 1e-12 <= est <= high + 1e-12
     if k.sum() == 0:

@@ -377,12 +377,17 @@ def find_slices(
 
     excess = tested["excess_errors"].to_numpy()
     terms = tested["n_terms"].to_numpy()
+    # aliases name the source of a cluster ("region: 71% label_stock = glossy, ...")
+    source_named = [d if src == "rule" else f"{src.replace('_', ' ')}: {d}"
+                    for d, src in zip(descriptions, tested["source"])]
     order = sorted(eligible.tolist(), key=lambda i: (-excess[i], i >= n_rules, terms[i], p_all[i],
                                                      descriptions[i]))
-    kept, kept_bits, aliases, explained = _select(
+    kept, kept_bits, aliases, sharpened, explained = _select(
         order, bits_of, tested["n_rows"].to_numpy(), n_rules, bitset.pack(table.errors)[0],
-        n, k_total, fdr, len(tested), merge_jaccard, descriptions)
-    folded_names: dict[int, list[str]] = {idx: [] for idx in kept}
+        n, k_total, fdr, len(tested), cutoff, merge_jaccard, source_named)
+    rank = sorted(range(len(kept)), key=lambda r: order.index(kept[r]))   # replacements moved
+    kept, kept_bits = [kept[r] for r in rank], [kept_bits[r] for r in rank]
+    folded_names: dict[int, list[str]] = {idx: list(sharpened.get(idx, [])) for idx in kept}
     for j in np.flatnonzero(folded_into >= 0):
         if folded_into[j] in folded_names:
             folded_names[folded_into[j]].append(descriptions[j])
@@ -432,57 +437,82 @@ def _bh_cutoff(p: np.ndarray, q: np.ndarray, fdr: float) -> float:
 
 
 def _select(order, bits_of, n_rows, n_rules, error_bits, total_rows, total_errors, fdr,
-            n_tested, threshold, descriptions):
+            n_tested, cutoff, threshold, descriptions):
     """Greedy pass in rank order over the eligible candidates.
 
-    A candidate whose rows overlap a kept slice at Jaccard >= `threshold` becomes that
-    slice's alias (a rule meeting a kept cluster takes its place as the main entry). A
-    candidate whose rows outside every kept slice are not significantly worse than the
-    rows outside them (one-sided Fisher at `cutoff`) is *explained by* the kept slices
-    it overlaps and is left out of the table. Returns (kept indices, their bitsets,
-    aliases per kept index, explained index -> kept indices).
+    For each candidate S, in order:
+
+    1. near-duplicate: if its rows overlap a kept slice at Jaccard >= `threshold` it
+       becomes that slice's alias (a rule meeting a kept cluster takes its place as the
+       main entry);
+    2. sharper: if S lies (>= 90%) inside a kept slice T whose rows outside S are not
+       significantly worse than the rows outside S (one-sided Fisher at `cutoff`, the
+       test `rules.fold_into_refinements` uses), S replaces T and T is listed as folded
+       into S: ``scanner = S3 and belt_speed >= 2.1`` beats ``... >= 1.7``;
+    3. explained: if S's rows outside every kept slice are not significantly worse than
+       the rows outside them, S is explained by the kept slices it overlaps and is left
+       out. "Significantly" here is Benjamini–Hochberg's step for the k-th discovery
+       among all `n_tested` candidates (``fdr * k / n_tested``): with thousands of rules
+       overlapping one strong slice BH's own cutoff grows lenient, and a flat cutoff let
+       unrelated rules with lift ~1.1 through at a million rows.
+
+    Returns (kept indices, their bitsets, aliases and folded descriptions per kept
+    index, explained index -> kept indices).
     """
     kept: list[int] = []
     kept_bits: list[np.ndarray] = []
     aliases: dict[int, list[str]] = {}
+    folded: dict[int, list[str]] = {}
     explained: dict[int, list[int]] = {}
+
+    def count(bits):
+        return int(np.bitwise_count(bits).sum()), int(np.bitwise_count(bits & error_bits).sum())
+
     union = np.zeros_like(error_bits)
     union_rows = union_errors = 0
     for idx in order:
         bits = bits_of(idx)
-        size = int(n_rows[idx])
-        twin = None
-        for pos, j in enumerate(kept):
-            other = int(n_rows[j])
-            if min(size, other) < threshold * max(size, other):   # Jaccard <= small / large
-                continue
-            inter = int(np.bitwise_count(bits & kept_bits[pos]).sum())
-            if inter / (size + other - inter) >= threshold:
-                twin = pos
-                break
+        size, errs = count(bits)
+        overlaps = [int(np.bitwise_count(bits & kb).sum()) for kb in kept_bits]
+        twin = next((pos for pos, (j, inter) in enumerate(zip(kept, overlaps))
+                     if inter / (size + int(n_rows[j]) - inter) >= threshold), None)
         if twin is not None:
             j = kept[twin]
             if idx < n_rules <= j:          # a rule explains a kept cluster: swap roles
                 kept[twin], kept_bits[twin] = idx, bits
                 aliases[idx] = [descriptions[j]] + aliases.pop(j)
+                folded[idx] = folded.pop(j)
             else:
                 aliases[j].append(descriptions[idx])
             continue
+        sharper = None
+        for pos, (j, inter) in enumerate(zip(kept, overlaps)):
+            if inter < 0.9 * size or int(n_rows[j]) <= size:
+                continue
+            r_rest, k_rest = count(kept_bits[pos] & ~bits)
+            if fisher_greater(k_rest, r_rest, total_errors - errs, total_rows - size) > cutoff:
+                sharper = pos
+                break
+        if sharper is not None:
+            j = kept[sharper]
+            kept[sharper], kept_bits[sharper] = idx, bits
+            folded[idx] = [descriptions[j]] + aliases.pop(j) + folded.pop(j)
+            aliases[idx] = []
+            union = np.bitwise_or.reduce(np.stack(kept_bits), axis=0)
+            union_rows, union_errors = count(union)
+            continue
         if kept:
-            outside = bits & ~union
-            r_out = int(np.bitwise_count(outside).sum())
-            k_out = int(np.bitwise_count(outside & error_bits).sum())
+            r_out, k_out = count(bits & ~union)
             p = fisher_greater(k_out, r_out, total_errors - union_errors, total_rows - union_rows)
             # the k-th slice shown must meet BH's threshold for k discoveries among
             # everything tested, on its rows outside the slices above it
             if r_out == 0 or p > fdr * (len(kept) + 1) / n_tested:
-                explained[idx] = [j for pos, j in enumerate(kept)
-                                  if np.bitwise_count(bits & kept_bits[pos]).sum() > 0]
+                explained[idx] = [j for j, inter in zip(kept, overlaps) if inter > 0]
                 continue
         kept.append(idx)
         kept_bits.append(bits)
         aliases[idx] = []
+        folded[idx] = []
         union |= bits
-        union_rows = int(np.bitwise_count(union).sum())
-        union_errors = int(np.bitwise_count(union & error_bits).sum())
-    return kept, kept_bits, aliases, explained
+        union_rows, union_errors = count(union)
+    return kept, kept_bits, aliases, folded, explained

@@ -1,0 +1,532 @@
+"""The review queue: disjoint strata of error rows and a fixed random order in each.
+
+Every error row belongs to exactly one stratum: the highest-ranked queued candidate
+that contains it, or ``rest`` when no queued candidate does. Each error row gets one
+random key (from ``random_state``) and each stratum is read in key order, so the
+reviewed rows of a stratum are always a prefix of one random order: a simple random
+sample of the stratum. Topping up (`Queue.extend`) continues every stratum's order
+and appends to the sheet; it never re-draws.
+"""
+from __future__ import annotations
+
+import csv
+import heapq
+import os
+import tempfile
+from dataclasses import dataclass, field
+from typing import Any, Mapping, Sequence
+
+import numpy as np
+import pandas as pd
+
+from slicefind.slices import FoundSlices
+from slicefind.table import SlicefindTypeError, SlicefindValueError, _suggest
+
+__all__ = ["Queue", "build_queue", "REST", "MIN_PER_STRATUM", "QUEUE_COLUMNS", "SHEET_COLUMNS"]
+
+#: the stratum of error rows that no queued candidate contains
+REST = "rest"
+#: each queued candidate gets at least this many reviews (fewer only if it has fewer errors)
+MIN_PER_STRATUM = 5
+#: columns of `Queue.table` in order; ``id``, ``label`` and ``prediction`` only when known,
+#: then the pointer columns named in ``show=``
+QUEUE_COLUMNS = ("position", "stratum", "row", "id", "label", "prediction", "proposal")
+#: the columns a reviewer fills in on the sheet written by `Queue.to_csv`
+SHEET_COLUMNS = ("reviewed", "tags", "note")
+
+
+@dataclass(frozen=True, repr=False)
+class Queue:
+    """An ordered review sample of error rows, drawn stratum by stratum.
+
+    Attributes
+    ----------
+    table : DataFrame
+        One line per queued error row, in review order: ``position`` (1 first),
+        ``stratum`` (a slice id or ``"rest"``), ``row`` (position in the user's frame),
+        ``id`` (the id column's value, when there is one), ``label`` and ``prediction``
+        (when known), ``proposal`` (the stratum's description; empty for ``rest``), and
+        the pointer columns named in ``show=``.
+    strata : DataFrame
+        One line per stratum, candidates in rank order then ``rest``: ``stratum``,
+        ``source``, ``description``, ``n_errors`` (error rows in the stratum, N_h),
+        ``weight`` (N_h / all errors), ``slice_errors`` (the slice's errors before
+        higher-ranked candidates took theirs), ``n_queued``.
+    n_rows, n_errors : int
+        Analysed rows and error rows of the scan the queue was drawn from.
+    params : dict
+        The options used, and the top-ups since (``extensions``).
+    """
+
+    table: pd.DataFrame
+    strata: pd.DataFrame
+    n_rows: int
+    n_errors: int
+    params: Mapping[str, Any]
+    _order: Mapping[str, np.ndarray] = field(default_factory=dict)   # stratum -> rows in key order
+    _rowdata: pd.DataFrame = field(default_factory=pd.DataFrame)     # per error row (index = row)
+    _batches: tuple = ()                                              # per batch: {stratum: count}
+
+    @property
+    def error_rate(self) -> float:
+        """Errors per analysed row of the scan."""
+        return self.n_errors / self.n_rows
+
+    @property
+    def sizes(self) -> dict[str, int]:
+        """Error rows per stratum (N_h)."""
+        return dict(zip(self.strata["stratum"], self.strata["n_errors"].astype(int)))
+
+    def rows(self, stratum: str) -> np.ndarray:
+        """Queued rows of `stratum`, in review order."""
+        if stratum not in self._order:
+            msg = f"stratum={stratum!r} is not a stratum of this queue; strata are {list(self._order)}."
+            raise SlicefindValueError(msg)
+        n = int(self.strata.set_index("stratum").at[stratum, "n_queued"])
+        return self._order[stratum][:n].copy()
+
+    def order(self, stratum: str) -> np.ndarray:
+        """Every error row of `stratum` in its fixed random order (queued ones first)."""
+        if stratum not in self._order:
+            msg = f"stratum={stratum!r} is not a stratum of this queue; strata are {list(self._order)}."
+            raise SlicefindValueError(msg)
+        return self._order[stratum].copy()
+
+    def __len__(self) -> int:
+        return len(self.table)
+
+    def __repr__(self):
+        return f"Queue(n_queued={len(self.table)}, n_strata={len(self.strata)})"
+
+    def extend(self, n: int, *, rest: int | None = None) -> "Queue":
+        """A longer queue: this one unchanged, then `n` more rows continuing each stratum.
+
+        The strata stay as they are. The new rows go to the candidates first, evening
+        out their counts (fewest reviews first, ties by rank), and to ``rest``.
+
+        Parameters
+        ----------
+        n : int
+            Rows to add, ``>= 1``. Fewer are added (with a warning) when the strata run out.
+        rest : int, optional
+            How many of the `n` go to ``rest``; default its current share of the queue.
+
+        Returns
+        -------
+        Queue
+            Its first ``len(self)`` lines equal ``self.table``.
+
+        Examples
+        --------
+        >>> queue = build_queue(_demo_found(), budget=30, rest=10)
+        >>> longer = queue.extend(20)
+        >>> len(longer), longer.table.head(len(queue)).equals(queue.table)
+        (50, True)
+        """
+        n = _check_int("n", n, 1)
+        counts = self.strata.set_index("stratum")["n_queued"].astype(int).to_dict()
+        caps = self.sizes
+        if rest is None:
+            rest = int(round(n * counts.get(REST, 0) / len(self.table))) if len(self.table) else 0
+        rest = min(_check_int("rest", rest, 0), n)
+        candidates = [s for s in self.strata["stratum"] if s != REST]
+        add = dict.fromkeys(self.strata["stratum"], 0)
+        room_rest = caps.get(REST, 0) - counts.get(REST, 0)
+        first = min(rest, room_rest)
+        add_rest = first
+        used = _water_fill([counts[s] for s in candidates], [caps[s] for s in candidates], n - first)
+        for s, u in zip(candidates, used):
+            add[s] = int(u)
+        leftover = n - first - int(sum(used))
+        add_rest += min(leftover, room_rest - first)
+        if REST in add:
+            add[REST] = add_rest
+        added = sum(add.values())
+        if added < n:
+            import warnings
+            msg = (f"only {added} more error rows remain unqueued, so the queue grows by {added}, "
+                   f"not {n}; every stratum is now queued in full.")
+            warnings.warn(msg, stacklevel=2)
+        if added == 0:
+            return self
+        params = dict(self.params)
+        params["extensions"] = list(params.get("extensions", [])) + [{"n": n, "rest": rest}]
+        return _assemble(self.strata.drop(columns="n_queued"), self._order, self._rowdata,
+                         self._batches + ({s: c for s, c in add.items() if c},), params,
+                         self.n_rows, self.n_errors)
+
+    def to_csv(self, path, *, reviews: pd.DataFrame | None = None, overwrite: bool = False) -> None:
+        """Write the review sheet: the queue's columns plus ``reviewed``, ``tags``, ``note``.
+
+        A reviewer marks ``reviewed`` (1/0, yes/no, x), types categories in ``tags``
+        (several separated by ``;``) and anything else in ``note``. The file is UTF-8 with
+        a byte-order mark, so spreadsheet programs read accents correctly, and is written
+        to a temporary file first, then moved into place.
+
+        Parameters
+        ----------
+        path : str or os.PathLike
+        reviews : DataFrame, optional
+            Reviews to fill in (columns ``row``, ``reviewed``, ``tags``, ``note``), e.g.
+            ``Workspace.reviews()``; every row must be in the queue.
+        overwrite : bool, default=False
+            Replace a file that already holds filled-in review cells. Without it such a
+            file is refused, so typed reviews are never overwritten by accident; an
+            unfilled sheet is replaced.
+
+        Examples
+        --------
+        >>> import tempfile, pathlib
+        >>> queue = build_queue(_demo_found(), budget=12, rest=2)
+        >>> path = pathlib.Path(tempfile.mkdtemp()) / "queue.csv"
+        >>> queue.to_csv(path)
+        >>> print(path.read_text(encoding="utf-8-sig").splitlines()[0])
+        position,stratum,row,id,proposal,reviewed,tags,note
+        """
+        path = os.fspath(path)
+        if os.path.exists(path) and not overwrite:
+            _refuse_filled_sheet(path)
+        sheet = self.table.copy()
+        for column in SHEET_COLUMNS:
+            sheet[column] = ""
+        if reviews is not None:
+            _fill_reviews(sheet, reviews)
+        folder = os.path.dirname(os.path.abspath(path))
+        fd, tmp = tempfile.mkstemp(prefix=".queue-", suffix=".csv", dir=folder)
+        try:
+            with os.fdopen(fd, "w", encoding="utf-8-sig", newline="") as handle:
+                sheet.to_csv(handle, index=False, lineterminator="\n")
+            os.replace(tmp, path)
+        except BaseException:
+            if os.path.exists(tmp):
+                os.unlink(tmp)
+            raise
+
+
+def _check_int(name: str, value, low: int) -> int:
+    """An int >= low, or a clear error naming the argument."""
+    if isinstance(value, bool) or not isinstance(value, (int, np.integer)):
+        raise SlicefindTypeError(f"{name} must be an integer; got {value!r} ({type(value).__name__}).")
+    if value < low:
+        raise SlicefindValueError(f"{name} must be >= {low}; got {value!r}.")
+    return int(value)
+
+
+def _water_fill(counts: Sequence[int], caps: Sequence[int], amount: int) -> list[int]:
+    """Add `amount` one at a time to the entry with the fewest (ties: first), below its cap."""
+    heap = [(c, i) for i, (c, cap) in enumerate(zip(counts, caps)) if c < cap]
+    heapq.heapify(heap)
+    added = [0] * len(counts)
+    while amount > 0 and heap:
+        c, i = heapq.heappop(heap)
+        added[i] += 1
+        amount -= 1
+        if c + 1 < caps[i]:
+            heapq.heappush(heap, (c + 1, i))
+    return added
+
+
+def _allocate(sizes: Sequence[int], n_rest_base: int, budget: int, rest: int,
+              top: int | None) -> tuple[list[int], int]:
+    """Reviews per candidate stratum (rank order; 0 = not queued) and for rest.
+
+    Assumes every size is >= 1. Candidates are admitted in rank order while the budget
+    left after rest's quota gives each min(MIN_PER_STRATUM, size); what remains evens
+    out the admitted candidates, then goes to rest, whose stratum also holds the errors
+    of candidates not admitted.
+    """
+    quota = min(rest, budget)
+    avail = budget - quota
+    limit = len(sizes) if top is None else min(top, len(sizes))
+    alloc = [0] * len(sizes)
+    admitted = 0
+    for j in range(limit):
+        need = min(MIN_PER_STRATUM, sizes[j])
+        if need > avail:
+            break
+        alloc[j] = need
+        avail -= need
+        admitted += 1
+    if top is not None and admitted < limit:
+        needed = quota + sum(min(MIN_PER_STRATUM, s) for s in sizes[:limit])
+        msg = (f"budget={budget} cannot give top={top} candidates {MIN_PER_STRATUM} reviews each "
+               f"besides rest={rest}; it needs budget >= {needed}, or a smaller top, or top=None "
+               "to queue as many candidates as the budget allows.")
+        raise SlicefindValueError(msg)
+    n_rest = n_rest_base + sum(sizes[admitted:])
+    rest_alloc = min(quota, n_rest)
+    avail += quota - rest_alloc
+    extra = _water_fill(alloc[:admitted], sizes[:admitted], avail)
+    for j, e in enumerate(extra):
+        alloc[j] += e
+    avail -= sum(extra)
+    more_rest = min(avail, n_rest - rest_alloc)
+    return alloc, rest_alloc + more_rest
+
+
+def _check_show(show, data: pd.DataFrame) -> tuple[str, ...]:
+    """Pointer column names: strings naming columns of the analysed data, no reserved names."""
+    if isinstance(show, str):
+        show = (show,)
+    try:
+        show = tuple(show)
+    except TypeError:
+        raise SlicefindTypeError(f"show must be a column name or a sequence of them; got {show!r}.") from None
+    reserved = set(QUEUE_COLUMNS) | set(SHEET_COLUMNS)
+    for column in show:
+        if not isinstance(column, str):
+            raise SlicefindTypeError(f"show must name columns by string; got {column!r} ({type(column).__name__}).")
+        if column not in data.columns:
+            msg = f"show names {column!r}, which is not a column of data.{_suggest(column, data.columns)}"
+            raise SlicefindValueError(msg)
+        if column in reserved:
+            msg = (f"show names {column!r}, which the review sheet already uses for its own column; "
+                   "rename that column of data first.")
+            raise SlicefindValueError(msg)
+    if len(set(show)) != len(show):
+        raise SlicefindValueError(f"show names a column twice: {list(show)!r}.")
+    return show
+
+
+def _assemble(strata: pd.DataFrame, order: Mapping[str, np.ndarray], rowdata: pd.DataFrame,
+              batches: tuple, params: Mapping[str, Any], n_rows: int, n_errors: int) -> Queue:
+    """Lay out the batches (each evenly interleaved across its strata) into a Queue.
+
+    Trusts its inputs: `order` holds each stratum's error rows in key order, `batches`
+    counts per stratum that never exceed the stratum.
+    """
+    rank = {s: i for i, s in enumerate(strata["stratum"])}
+    taken = dict.fromkeys(rank, 0)
+    rows, labels = [], []
+    for batch in batches:
+        keys, batch_rows, batch_strata = [], [], []
+        for stratum, count in batch.items():
+            start = taken[stratum]
+            chunk = order[stratum][start:start + count]
+            taken[stratum] = start + count
+            # even interleave: the i-th of `count` rows sits at (i + 1/2) / count of the batch
+            keys.append((np.arange(count) + 0.5) / count)
+            batch_rows.append(chunk)
+            batch_strata.append(np.full(count, rank[stratum]))
+        if not keys:
+            continue
+        key = np.concatenate(keys)
+        stratum_rank = np.concatenate(batch_strata)
+        how = np.lexsort((stratum_rank, key))
+        rows.append(np.concatenate(batch_rows)[how])
+        labels.append(stratum_rank[how])
+    row = np.concatenate(rows).astype(np.int64) if rows else np.zeros(0, np.int64)
+    ranks = np.concatenate(labels) if labels else np.zeros(0, np.int64)
+    names = np.asarray(strata["stratum"], dtype=object)
+    descriptions = np.asarray(strata["description"], dtype=object)
+    columns = {"position": np.arange(1, row.size + 1, dtype=np.int64),
+               "stratum": pd.Series(names[ranks], dtype="str"), "row": row}
+    extra = rowdata.loc[row] if row.size else rowdata.iloc[:0]
+    for column in ("id", "label", "prediction"):
+        if column in rowdata.columns:
+            columns[column] = extra[column].to_numpy()
+    columns["proposal"] = pd.Series(descriptions[ranks], dtype="str")
+    for column in params.get("show", ()):
+        columns[column] = extra[column].to_numpy()
+    table = pd.DataFrame(columns)
+    strata = strata.copy()
+    strata["n_queued"] = np.array([taken[s] for s in strata["stratum"]], dtype=np.int64)
+    return Queue(table=table, strata=strata.reset_index(drop=True), n_rows=int(n_rows),
+                 n_errors=int(n_errors), params=dict(params), _order=dict(order),
+                 _rowdata=rowdata, _batches=tuple(dict(b) for b in batches))
+
+
+def build_queue(
+    found: FoundSlices,
+    *,
+    budget: int = 100,
+    rest: int = 20,
+    top: int | None = None,
+    random_state=0,
+    show: Sequence[str] | str = (),
+) -> Queue:
+    """Draw the review queue: a stratified random sample of the error rows.
+
+    Each error row goes to the highest-ranked candidate that contains it; the first
+    candidates (in the order of ``found.table``) become strata, and every other error
+    row falls in ``rest``. ``rest`` gets its quota, each queued candidate at least
+    5 reviews (fewer only if its stratum is smaller), and what remains of the budget
+    evens out the candidates' counts (never beyond a stratum's size); if the candidates
+    are queued in full the remainder goes to ``rest``. Within a stratum rows follow one
+    fixed random order, so any reviewed prefix is a simple random sample of the stratum,
+    and the sheet interleaves the strata evenly, so stopping early still leaves every
+    stratum sampled.
+
+    Parameters
+    ----------
+    found : FoundSlices
+        The result of `find_slices` (or `Workspace.load_found`).
+    budget : int, default=100
+        Rows to queue, ``>= 1`` (all error rows if there are fewer).
+    rest : int, default=20
+        Reviews reserved for the errors no queued candidate contains.
+    top : int, optional
+        Candidates to queue as strata; default as many as the budget gives 5 reviews
+        each. Candidates whose errors all belong to higher-ranked ones are skipped.
+    random_state : int, Generator or None, default=0
+        Seeds the review order. The same seed gives the same order in every stratum;
+        a larger budget with the same strata queues a superset, row for row a
+        continuation (use `Queue.extend` to keep the sheet itself as a prefix).
+    show : str or sequence of str, default=()
+        Columns of the data to carry onto the sheet for display (image path, text).
+
+    Returns
+    -------
+    Queue
+
+    Examples
+    --------
+    >>> queue = build_queue(_demo_found(), budget=30, rest=10)
+    >>> print(queue.strata[["stratum", "n_errors", "n_queued"]].to_string(index=False))
+    stratum  n_errors  n_queued
+         R1       186        10
+         R2       152        10
+       rest        86        10
+    >>> print(queue.table.head(4)[["position", "stratum", "row"]].to_string(index=False))
+     position stratum  row
+            1      R1  232
+            2      R2  526
+            3    rest 1363
+            4      R1  936
+    """
+    if not isinstance(found, FoundSlices):
+        msg = f"found must be the FoundSlices that find_slices returns; got {type(found).__name__}."
+        raise SlicefindTypeError(msg)
+    budget = _check_int("budget", budget, 1)
+    rest = _check_int("rest", rest, 0)
+    if top is not None:
+        top = _check_int("top", top, 0)
+    if not (random_state is None or isinstance(random_state, np.random.Generator)
+            or (isinstance(random_state, (int, np.integer)) and not isinstance(random_state, bool))):
+        msg = f"random_state must be an int, a numpy Generator or None; got {random_state!r}."
+        raise SlicefindTypeError(msg)
+    table = found.eval_table
+    show = _check_show(show, table.data)
+    rng = np.random.default_rng(random_state)
+
+    error_idx = np.flatnonzero(table.errors)
+    error_rows = np.asarray(table.positions, dtype=np.int64)[error_idx]
+    key = rng.permutation(error_rows.size)                 # one random key per error row
+    owner = np.full(error_rows.size, -1, dtype=np.int64)
+    slice_ids = list(found.table["slice_id"])
+    for j, sid in enumerate(slice_ids):           # rank order: the first candidate keeps a row
+        hit = np.intersect1d(found.rows(sid), error_rows, assume_unique=True)
+        idx = np.searchsorted(error_rows, hit)
+        idx = idx[owner[idx] == -1]
+        owner[idx] = j
+    counts = np.bincount(owner[owner >= 0], minlength=len(slice_ids))
+    nonempty = [j for j in range(len(slice_ids)) if counts[j] > 0]
+    sizes = [int(counts[j]) for j in nonempty]
+    n_rest_base = int((owner == -1).sum())
+    alloc, rest_alloc = _allocate(sizes, n_rest_base, budget, rest, top)
+
+    queued = [j for j, a in zip(nonempty, alloc) if a > 0]
+    is_rest = ~np.isin(owner, queued)
+    order: dict[str, np.ndarray] = {}
+    records = []
+    by_key = np.argsort(key, kind="stable")
+    owner_sorted = owner[by_key]
+    rest_sorted = is_rest[by_key]
+    rows_sorted = error_rows[by_key]
+    info = found.table.set_index("slice_id")
+    for j in queued:
+        sid = slice_ids[j]
+        order[sid] = rows_sorted[owner_sorted == j]
+        records.append({"stratum": sid, "source": str(info.at[sid, "source"]),
+                        "description": str(info.at[sid, "description"]),
+                        "n_errors": int(order[sid].size),
+                        "slice_errors": int(info.at[sid, "n_errors"])})
+    order[REST] = rows_sorted[rest_sorted]
+    if order[REST].size:
+        records.append({"stratum": REST, "source": REST, "description": "",
+                        "n_errors": int(order[REST].size), "slice_errors": int(order[REST].size)})
+    else:
+        del order[REST]
+    strata = pd.DataFrame(records, columns=["stratum", "source", "description", "n_errors",
+                                            "slice_errors"])
+    strata["weight"] = strata["n_errors"] / error_rows.size
+    strata = strata[["stratum", "source", "description", "n_errors", "weight", "slice_errors"]]
+    strata = strata.astype({"stratum": "str", "source": "str", "description": "str",
+                            "n_errors": np.int64, "slice_errors": np.int64})
+
+    rowdata = pd.DataFrame(index=pd.Index(error_rows, name="row"))
+    if table.id_column is not None:
+        rowdata["id"] = table.data[table.id_column].to_numpy()[error_idx]
+    if table.label is not None:
+        rowdata["label"] = np.asarray(table.label)[error_idx]
+    if table.prediction is not None:
+        rowdata["prediction"] = np.asarray(table.prediction)[error_idx]
+    for column in show:
+        rowdata[column] = table.data[column].to_numpy()[error_idx]
+
+    batch = {slice_ids[j]: a for j, a in zip(nonempty, alloc) if a > 0}
+    if rest_alloc:
+        batch[REST] = rest_alloc
+    params = {"budget": budget, "rest": rest, "top": top, "show": list(show),
+              "random_state": random_state if isinstance(random_state, (int, np.integer)) else None,
+              "min_per_stratum": MIN_PER_STRATUM, "id_column": table.id_column,
+              "extensions": []}
+    return _assemble(strata, order, rowdata, (batch,), params, table.n_rows, table.n_errors)
+
+
+def _refuse_filled_sheet(path: str) -> None:
+    """Raise unless `path` is a review sheet with no filled-in review cell."""
+    try:
+        with open(path, encoding="utf-8-sig", newline="") as handle:
+            reader = csv.reader(handle)
+            header = [h.strip().lower() for h in next(reader, [])]
+            filled = 0
+            cols = [i for i, h in enumerate(header) if h in SHEET_COLUMNS]
+            for record in reader:
+                filled += sum(1 for i in cols if i < len(record) and record[i].strip())
+    except (UnicodeDecodeError, csv.Error, OSError) as exc:
+        msg = f"{path!r} exists and is not a review sheet ({exc}); pass overwrite=True to replace it."
+        raise SlicefindValueError(msg) from None
+    if "row" not in header or not cols:
+        msg = f"{path!r} exists and is not a review sheet; pass overwrite=True to replace it."
+        raise SlicefindValueError(msg)
+    if filled:
+        msg = (f"{path!r} already holds {filled} filled-in review cells; import it first "
+               "(Workspace.import_sheet or tally), or pass overwrite=True to replace it.")
+        raise SlicefindValueError(msg)
+
+
+def _fill_reviews(sheet: pd.DataFrame, reviews: pd.DataFrame) -> None:
+    """Copy reviewed/tags/note of `reviews` into the matching lines of `sheet` (in place)."""
+    if not isinstance(reviews, pd.DataFrame):
+        raise SlicefindTypeError(f"reviews must be a DataFrame; got {type(reviews).__name__}.")
+    missing = [c for c in ("row", "reviewed", "tags") if c not in reviews.columns]
+    if missing:
+        raise SlicefindValueError(f"reviews lacks columns {missing}; it has {list(reviews.columns)}.")
+    line_of = {int(r): i for i, r in enumerate(sheet["row"])}
+    outside = [int(r) for r in reviews["row"] if int(r) not in line_of]
+    if outside:
+        msg = (f"reviews holds {len(outside)} rows that are not in the queue (first: "
+               f"{outside[:5]}); extend the queue or leave those reviews out.")
+        raise SlicefindValueError(msg)
+    notes = reviews["note"] if "note" in reviews.columns else pd.Series([""] * len(reviews))
+    for r, done, tags, note in zip(reviews["row"], reviews["reviewed"], reviews["tags"], notes):
+        i = line_of[int(r)]
+        sheet.iat[i, sheet.columns.get_loc("reviewed")] = "1" if bool(done) else ""
+        sheet.iat[i, sheet.columns.get_loc("tags")] = "" if pd.isna(tags) else str(tags)
+        sheet.iat[i, sheet.columns.get_loc("note")] = "" if pd.isna(note) else str(note)
+
+
+def _demo_found() -> FoundSlices:
+    """A small seeded scan for the examples: parcel labels read at a depot."""
+    from slicefind.slices import find_slices
+    rng = np.random.default_rng(7)
+    n = 2000
+    frame = pd.DataFrame({"parcel": [f"P{i:04d}" for i in range(n)],
+                          "scanner": rng.choice(["S1", "S2", "S3"], n),
+                          "shift": rng.choice(["day", "night"], n),
+                          "label_stock": rng.choice(["matte", "gloss", "recycled"], n)})
+    rate = np.where((frame["scanner"] == "S3") & (frame["shift"] == "night"), 0.45, 0.08)
+    rate = np.where(frame["label_stock"] == "recycled", rate + 0.2, rate)
+    wrong = rng.random(n) < rate
+    return find_slices(frame, errors=wrong, id_column="parcel")

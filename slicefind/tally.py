@@ -1,0 +1,609 @@
+"""The tally: read a review sheet, estimate category shares, and decide each candidate.
+
+Reviews come back as a CSV sheet (from `Queue.to_csv`, filled in any spreadsheet
+program) or a DataFrame with at least ``row``, ``reviewed`` and ``tags``. Reading is
+tolerant of what spreadsheets do (byte-order mark, ``;`` or tab as the delimiter, stray
+spaces, letter case of tags and headers, quoting) and strict about real problems, which
+are all listed in one error: unknown rows, rows not in the queue, duplicate lines that
+disagree, ``reviewed`` values that are not yes/no, tags on a line marked not reviewed.
+
+Estimates are design-based: each stratum's reviewed rows are a simple random sample of
+its error rows (the queue's order makes any reviewed prefix one).
+"""
+from __future__ import annotations
+
+import csv
+import io
+import os
+import re
+import unicodedata
+import warnings
+from collections import Counter
+from dataclasses import dataclass, field
+from typing import Any, Mapping
+
+import numpy as np
+import pandas as pd
+
+from slicefind.queue import REST, Queue
+from slicefind.stats import (cochran_sample_size, stratified_interval, stratified_proportion,
+                             wilson_interval_fpc)
+from slicefind.table import SlicefindTypeError, SlicefindValueError
+
+__all__ = ["Tally", "tally", "read_reviews", "normalize_tag", "UNTAGGED", "TRUE_WORDS",
+           "FALSE_WORDS", "MAX_LISTED", "CATEGORY_COLUMNS", "SLICE_COLUMNS"]
+
+#: the category row for reviewed errors that carry no tag: what no category explains yet
+UNTAGGED = "(untagged)"
+#: accepted spellings of "reviewed" (compared after stripping and lower-casing)
+TRUE_WORDS = ("1", "1.0", "yes", "y", "true", "t", "x", "✓", "✔")
+#: accepted spellings of "not reviewed"; an empty cell is "not reviewed" too
+FALSE_WORDS = ("0", "0.0", "no", "n", "false", "f")
+#: problems listed in one error message (the count of all is given too)
+MAX_LISTED = 20
+CATEGORY_COLUMNS = ("category", "n_tagged", "share", "share_low", "share_high", "share_se",
+                    "est_errors", "est_errors_low", "est_errors_high", "headroom",
+                    "headroom_low", "headroom_high", "slices")
+SLICE_COLUMNS = ("slice_id", "description", "name", "name_source", "n_errors", "n_reviewed",
+                 "n_named", "precision", "precision_low", "precision_high", "verdict",
+                 "more_needed")
+_REQUIRED = ("row", "reviewed", "tags")
+
+
+def normalize_tag(text: str) -> str:
+    """A category name as compared and shown: NFC, trimmed, single spaces, lower case.
+
+    Examples
+    --------
+    >>> normalize_tag("  Faded   Ink ")
+    'faded ink'
+    """
+    text = unicodedata.normalize("NFC", str(text))
+    return re.sub(r"\s+", " ", text).strip().lower()
+
+
+@dataclass(frozen=True, repr=False)
+class Tally:
+    """Estimates from the reviewed rows of a queue.
+
+    Attributes
+    ----------
+    categories : DataFrame
+        One line per category (largest share first), then ``(untagged)``: ``category``,
+        ``n_tagged`` (reviewed rows carrying it), ``share`` of all errors with its interval
+        (``share_low``, ``share_high``) and standard error, ``est_errors`` (share times the
+        errors) with its interval, ``headroom`` (error rate if the category were fixed,
+        ``error_rate * (1 - share)``) with its interval, and ``slices`` (candidates named
+        after it).
+    slices : DataFrame
+        One line per queued candidate: ``slice_id``, ``description``, ``name`` and where it
+        came from (``names`` or ``tags``), ``n_errors`` in its stratum, ``n_reviewed``,
+        ``n_named`` (reviewed rows tagged with the name), ``precision`` with its interval,
+        ``verdict`` and ``more_needed``.
+    cooccurrence : DataFrame
+        Reviewed rows carrying both categories (square, by category; diagonal = ``n_tagged``).
+    strata : DataFrame
+        Per stratum: ``n_errors``, ``weight``, ``n_queued``, ``n_reviewed``, ``n_untagged``,
+        ``n_skipped`` (queued rows before the last reviewed one that are not reviewed: the
+        estimate assumes they are like the others).
+    reviews : DataFrame
+        The reviews as read (one line per row; see `read_reviews`).
+    summary : dict
+        ``n_errors``, ``n_rows``, ``error_rate``, ``n_queued``, ``n_reviewed``,
+        ``unreviewed_weight`` (share of errors in strata with no review yet),
+        ``rest_weight``, ``threshold``, ``confidence_level``, ``method``.
+    """
+
+    categories: pd.DataFrame
+    slices: pd.DataFrame
+    cooccurrence: pd.DataFrame
+    strata: pd.DataFrame
+    reviews: pd.DataFrame
+    summary: Mapping[str, Any] = field(default_factory=dict)
+
+    def __repr__(self):
+        return (f"Tally(n_reviewed={self.summary.get('n_reviewed')}, "
+                f"n_categories={len(self.categories) - 1}, n_slices={len(self.slices)})")
+
+
+# --- reading the sheet -------------------------------------------------------------------
+
+
+def _cell(value) -> str:
+    """A sheet cell as trimmed text: missing -> '', 1.0 -> '1', True -> 'true'."""
+    if value is None:
+        return ""
+    if isinstance(value, (bool, np.bool_)):
+        return "true" if value else "false"
+    if isinstance(value, (float, np.floating)):
+        if np.isnan(value):
+            return ""
+        if float(value).is_integer():
+            return str(int(value))
+        return repr(float(value))
+    try:
+        if pd.isna(value):
+            return ""
+    except (TypeError, ValueError):
+        pass
+    return str(value).strip()
+
+
+def _header_key(name) -> str:
+    """A header as matched: trimmed, lower case, inner spaces as underscores."""
+    return re.sub(r"\s+", "_", _cell(name).lstrip("\ufeff").strip().lower())
+
+
+def _read_csv_records(path: str) -> tuple[list[str], list[tuple[str, list[str]]]]:
+    """Header and (where, cells) records of a CSV sheet; sniffs ',' ';' or tab."""
+    try:
+        with open(path, "rb") as handle:
+            raw = handle.read()
+    except OSError as exc:
+        raise SlicefindValueError(f"reviewed={path!r} cannot be read: {exc.strerror}.") from None
+    try:
+        text = raw.decode("utf-8-sig")
+    except UnicodeDecodeError as exc:
+        msg = (f"reviewed={path!r} is not UTF-8 text (byte {raw[exc.start]:#04x} at offset "
+               f"{exc.start}); save it from the spreadsheet as 'CSV UTF-8'.")
+        raise SlicefindValueError(msg) from None
+    first = text.split("\n", 1)[0]
+    best, best_cells = ",", -1
+    for delimiter in (",", ";", "\t"):
+        cells = [_header_key(c) for c in next(csv.reader([first], delimiter=delimiter), [])]
+        score = sum(c in _REQUIRED for c in cells) * 100 + len(cells)
+        if score > best_cells:
+            best, best_cells = delimiter, score
+    reader = csv.reader(io.StringIO(text, newline=""), delimiter=best)
+    records = []
+    try:
+        header = next(reader, None)
+        if header is None:
+            raise SlicefindValueError(f"reviewed={path!r} is empty; it needs a header line "
+                                      "with at least row, reviewed and tags.")
+        start = reader.line_num + 1
+        for cells in reader:
+            records.append((f"line {start}", cells))
+            start = reader.line_num + 1
+    except csv.Error as exc:
+        msg = f"reviewed={path!r} is not valid CSV near line {reader.line_num}: {exc}."
+        raise SlicefindValueError(msg) from None
+    return header, records
+
+
+def _frame_records(frame: pd.DataFrame) -> tuple[list[str], list[tuple[str, list[str]]]]:
+    """Header and (where, cells) records of a DataFrame of reviews."""
+    header = [str(c) for c in frame.columns]
+    records = []
+    for i, values in enumerate(frame.itertuples(index=False, name=None)):
+        label = frame.index[i]
+        where = f"frame row {i}" + ("" if label == i else f" (index {label!r})")
+        records.append((where, list(values)))
+    return header, records
+
+
+def _parse_reviewed(text: str):
+    """True, False, None (blank) or the string itself when unrecognised."""
+    word = text.strip().lower()
+    if word == "":
+        return None
+    if word in TRUE_WORDS:
+        return True
+    if word in FALSE_WORDS:
+        return False
+    return text
+
+
+def _parse_row(text: str):
+    """An int row number, or None when the text is not one."""
+    try:
+        value = float(text)
+    except ValueError:
+        return None
+    if not np.isfinite(value) or not value.is_integer():
+        return None
+    return int(value)
+
+
+def _raise_problems(source: str, problems: list[tuple[str, str]]) -> None:
+    """One error listing up to MAX_LISTED problems (where: what), with the total count."""
+    lines = [f"  {where}: {what}" for where, what in problems[:MAX_LISTED]]
+    more = len(problems) - MAX_LISTED
+    if more > 0:
+        lines.append(f"  ... and {more} more")
+    msg = (f"reviewed sheet {source} has {len(problems)} problem"
+           f"{'s' if len(problems) != 1 else ''}; nothing was read:\n" + "\n".join(lines))
+    raise SlicefindValueError(msg)
+
+
+def read_reviews(reviewed, queue: Queue) -> pd.DataFrame:
+    """Read and check a review sheet against the queue it was written from.
+
+    Parameters
+    ----------
+    reviewed : str, os.PathLike or DataFrame
+        A CSV sheet (UTF-8, with or without byte-order mark; ``,`` ``;`` or tab between
+        cells) or a frame, with columns ``row``, ``reviewed`` and ``tags`` (``note`` and the
+        queue's own columns optional; header case and spaces do not matter). ``reviewed``
+        accepts 1/0, yes/no, y/n, true/false, x, or empty (not reviewed); a line with tags
+        and an empty ``reviewed`` counts as reviewed. Tags are separated by ``;``.
+        Lines with every cell empty are skipped. When the sheet has ``position``,
+        ``stratum`` or ``id`` columns they must match the queue's (they catch a sheet
+        sorted on one column only).
+    queue : Queue
+        The queue the sheet belongs to.
+
+    Returns
+    -------
+    DataFrame
+        One line per row mentioned, sorted by row: ``row``, ``reviewed`` (bool), ``tags``
+        (normalised category names, sorted, joined by ``;``), ``note``, ``explicit``
+        (whether the line said anything: a reviewed mark, tags or a note), ``where``
+        (the sheet line or lines). Identical duplicate lines are merged.
+
+    Raises
+    ------
+    SlicefindValueError
+        Listing every offending line when any line has a problem; nothing is read then.
+
+    Examples
+    --------
+    >>> from slicefind.queue import _demo_found, build_queue
+    >>> queue = build_queue(_demo_found(), budget=10, rest=2)
+    >>> first = int(queue.table["row"][0])
+    >>> sheet = pd.DataFrame({"row": [first], "reviewed": ["Yes "], "tags": ["Torn Label; faded ink"]})
+    >>> print(read_reviews(sheet, queue)[["row", "reviewed", "tags"]].to_string(index=False))
+     row  reviewed                 tags
+     232      True faded ink;torn label
+    """
+    if not isinstance(queue, Queue):
+        raise SlicefindTypeError(f"queue must be a Queue (from build_queue); got {type(queue).__name__}.")
+    if isinstance(reviewed, pd.DataFrame):
+        source = "(DataFrame)"
+        header, records = _frame_records(reviewed)
+    elif isinstance(reviewed, (str, os.PathLike)):
+        source = repr(os.fspath(reviewed))
+        header, records = _read_csv_records(os.fspath(reviewed))
+    else:
+        msg = f"reviewed must be a CSV path or a DataFrame; got {type(reviewed).__name__}."
+        raise SlicefindTypeError(msg)
+
+    keys = [_header_key(h) for h in header]
+    repeated = sorted({k for k in keys if k and keys.count(k) > 1})
+    if repeated:
+        raise SlicefindValueError(f"reviewed sheet {source} has the column(s) {repeated} more than once.")
+    missing = [c for c in _REQUIRED if c not in keys]
+    if missing:
+        shown = [h for h in header]
+        msg = (f"reviewed sheet {source} lacks the column(s) {missing}; its columns are "
+               f"{shown}. It needs row, reviewed and tags (see Queue.to_csv).")
+        raise SlicefindValueError(msg)
+    col = {k: i for i, k in enumerate(keys) if k}
+
+    table = queue.table
+    in_queue = dict(zip(table["row"].astype(int), range(len(table))))
+    error_rows = set(int(r) for r in queue._rowdata.index)
+    checks = [(name, table[name].map(_cell).tolist()) for name in ("position", "stratum", "id")
+              if name in col and name in table.columns]
+
+    problems: list[tuple[str, str]] = []
+    parsed: dict[int, list[tuple[str, bool, tuple, str, bool]]] = {}
+    for where, cells in records:
+        cells = [_cell(c) for c in cells]
+        if len(cells) > len(header):
+            if any(cells[len(header):]):
+                problems.append((where, f"has {len(cells)} cells but the header has {len(header)} "
+                                        "(a note or tag with the delimiter in it needs quotes)"))
+                continue
+            cells = cells[:len(header)]
+        cells += [""] * (len(header) - len(cells))
+        if not any(cells):
+            continue
+        row_text = cells[col["row"]]
+        row = _parse_row(row_text)
+        if row is None:
+            problems.append((where, f"row {row_text!r} is not a row number (unknown row)"))
+            continue
+        if row not in in_queue:
+            why = ("an error row of the scan that is not queued yet" if row in error_rows
+                   else "not an error row of the scan")
+            problems.append((where, f"row {row} is not in the queue ({why})"))
+            continue
+        line = in_queue[row]
+        bad_check = False
+        for name, values in checks:
+            given = cells[col[name]]
+            if given and given != values[line]:
+                problems.append((where, f"row {row} has {name} {values[line]!r} in the queue but "
+                                        f"{given!r} in the sheet"))
+                bad_check = True
+        if bad_check:
+            continue
+        mark = _parse_reviewed(cells[col["reviewed"]])
+        if isinstance(mark, str):
+            problems.append((where, f"reviewed {mark!r} is not yes/no (use 1/0, yes/no, y/n, "
+                                    "true/false, x or leave it empty)"))
+            continue
+        raw_tags = cells[col["tags"]]
+        tags = tuple(sorted({normalize_tag(t) for t in raw_tags.split(";") if normalize_tag(t)}))
+        if UNTAGGED in tags:
+            problems.append((where, f"the tag {UNTAGGED!r} is reserved for reviewed rows "
+                                    "without tags; leave tags empty instead"))
+            continue
+        if mark is False and tags:
+            problems.append((where, f"reviewed says no but tags are {raw_tags!r}; mark it "
+                                    "reviewed or clear the tags"))
+            continue
+        for tag in tags:
+            if "," in tag:
+                warnings.warn(f"{where}: the tag {tag!r} holds a comma; tags are separated by "
+                              "';' (silence with warnings.simplefilter).", stacklevel=3)
+        note = cells[col["note"]] if "note" in col else ""
+        done = bool(mark) or (mark is None and bool(tags))
+        explicit = mark is not None or bool(tags) or bool(note)
+        parsed.setdefault(row, []).append((where, done, tags, note, explicit))
+
+    out = []
+    for row in sorted(parsed):
+        entries = parsed[row]
+        states = {(done, tags, note) for _, done, tags, note, _ in entries}
+        if len(states) > 1:
+            described = "; ".join(
+                f"{w}: reviewed={'yes' if d else 'no'}, tags={';'.join(t)!r}"
+                + (f", note={n!r}" if n else "") for w, d, t, n, _ in entries)
+            problems.append((", ".join(w for w, *_ in entries),
+                             f"row {row} appears {len(entries)} times and the lines disagree ({described})"))
+            continue
+        done, tags, note = states.pop()
+        out.append({"row": row, "reviewed": done, "tags": ";".join(tags), "note": note,
+                    "explicit": any(e for *_, e in entries),
+                    "where": ", ".join(w for w, *_ in entries)})
+    if problems:
+        _raise_problems(source, problems)
+    frame = pd.DataFrame(out, columns=["row", "reviewed", "tags", "note", "explicit", "where"])
+    return frame.astype({"row": np.int64, "reviewed": bool, "explicit": bool,
+                         "tags": "str", "note": "str", "where": "str"})
+
+
+# --- estimates ---------------------------------------------------------------------------
+
+
+def _check_level(name: str, value) -> float:
+    """A number strictly between 0 and 1, or a clear error."""
+    if isinstance(value, bool) or not isinstance(value, (int, float, np.floating)) or not 0 < value < 1:
+        raise SlicefindValueError(f"{name} must be a number strictly between 0 and 1; got {value!r}.")
+    return float(value)
+
+
+def _check_names(names, queue: Queue) -> dict[str, str]:
+    """slice_id -> normalised category, each id a candidate stratum of the queue."""
+    if names is None:
+        return {}
+    if not isinstance(names, Mapping):
+        raise SlicefindTypeError(f"names must map slice ids to category names; got {type(names).__name__}.")
+    candidates = [s for s in queue.strata["stratum"] if s != REST]
+    out = {}
+    for sid, name in names.items():
+        if sid not in candidates:
+            msg = (f"names has {sid!r}, which is not a queued candidate; the queue's candidates "
+                   f"are {candidates}.")
+            raise SlicefindValueError(msg)
+        if not isinstance(name, str) or not normalize_tag(name):
+            raise SlicefindValueError(f"names[{sid!r}] must be a non-empty category name; got {name!r}.")
+        if normalize_tag(name) == UNTAGGED:
+            raise SlicefindValueError(f"names[{sid!r}] = {name!r} is reserved; choose another name.")
+        out[sid] = normalize_tag(name)
+    return out
+
+
+def _more_needed(k: int, n: int, N: int, threshold: float, low: float, high: float,
+                 confidence_level: float) -> int:
+    """Further reviews that would likely decide a candidate (Cochran with the threshold as p).
+
+    The Wilson interval with finite-population correction excludes the threshold ``t``
+    once ``n >= n0 / (1 + (n0 - 1)/N)`` with ``n0 = z^2 t (1-t) / (p - t)^2`` if the
+    observed precision ``p`` holds; with no review yet, the best case (every review for,
+    or every review against) gives the fewest that could decide it.
+    """
+    if low >= threshold or high < threshold or n >= N:
+        return 0
+    if n == 0:
+        gap = max(threshold, 1.0 - threshold)
+    else:
+        gap = abs(k / n - threshold)
+    if gap == 0.0:
+        return N - n
+    need = cochran_sample_size(threshold, gap, population=N, confidence_level=confidence_level)
+    return int(min(N - n, max(1, int(np.ceil(need - 1e-9)) - n)))
+
+
+def tally(queue: Queue, reviewed, *, names: Mapping[str, str] | None = None,
+          threshold: float = 0.5, confidence_level: float = 0.95) -> Tally:
+    """Estimate each category's share of all errors and decide each candidate.
+
+    A category's share of errors is estimated stratum by stratum (the stratified
+    estimator, Cochran 1977 ch. 5): ``share = sum_h W_h p_h`` with ``W_h`` the stratum's
+    share of errors and ``p_h`` the tagged fraction of its reviewed rows. The interval
+    (`slicefind.stats.stratified_interval`) is the union of MOVER over per-stratum Wilson
+    limits with finite-population correction (Zou, Huang & Zhang 2009) and the score
+    interval for a weighted sum of proportions; it stays in [0, 1], starts at 0 when nobody
+    used the tag and ends at 1 when every review did, and covered the true share in about
+    95% of simulated reviews (``benchmarks/bench_coverage.py``). ``share_se`` is the
+    square root of Cochran's unbiased variance estimate with finite-population correction.
+    A stratum with no review yet is unknown, not zero:
+    the lower bound counts none of its errors, the upper bound all of them, and the
+    estimate takes it to look like the reviewed strata. Headroom is the error rate if the
+    category were fixed, ``error_rate * (1 - share)`` (common practice). A candidate's
+    precision is the share of its stratum's reviewed rows tagged with its name; it is
+    ``confirmed`` when the interval's lower end is at least ``threshold``, ``rejected``
+    when its upper end is below, ``undecided`` otherwise, and ``more_needed`` is Cochran's
+    sample size with finite-population correction (see `cochran_sample_size`).
+
+    Parameters
+    ----------
+    queue : Queue
+        The queue the reviews belong to.
+    reviewed : str, os.PathLike or DataFrame
+        The review sheet (see `read_reviews`).
+    names : mapping, optional
+        slice_id -> category. A candidate without one is named after the tag used most in
+        its stratum (ties: alphabetical).
+    threshold : float, default=0.5
+        Precision that confirms a candidate.
+    confidence_level : float, default=0.95
+
+    Returns
+    -------
+    Tally
+
+    References
+    ----------
+    .. [1] W. G. Cochran, *Sampling Techniques*, 3rd ed., Wiley (1977), ch. 3-5 (recalled).
+    .. [2] G. Y. Zou, W. Huang and X. Zhang, Comput. Stat. Data Anal. 53 (2009) 1080-1085
+           (MOVER with Wilson limits for a linear function of proportions; recalled).
+
+    Examples
+    --------
+    >>> from slicefind.queue import _demo_found, build_queue
+    >>> queue = build_queue(_demo_found(), budget=30, rest=10)
+    >>> sheet = queue.table[["row", "stratum"]].copy()
+    >>> sheet["reviewed"] = "yes"
+    >>> sheet["tags"] = sheet["stratum"].map({"R1": "smudged print", "R2": "ink smear", "rest": ""})
+    >>> result = tally(queue, sheet)
+    >>> print(result.categories[["category", "share", "share_low", "share_high"]].round(3).to_string(index=False))
+         category  share  share_low  share_high
+    smudged print  0.439      0.321       0.547
+        ink smear  0.358      0.263       0.487
+       (untagged)  0.203      0.151       0.354
+    >>> print(result.slices[["slice_id", "name", "precision_low", "verdict"]].round(3).to_string(index=False))
+    slice_id          name  precision_low   verdict
+          R1 smudged print          0.732 confirmed
+          R2     ink smear          0.735 confirmed
+    """
+    if not isinstance(queue, Queue):
+        raise SlicefindTypeError(f"queue must be a Queue (from build_queue); got {type(queue).__name__}.")
+    threshold = _check_level("threshold", threshold)
+    confidence_level = _check_level("confidence_level", confidence_level)
+    named = _check_names(names, queue)
+    reviews = read_reviews(reviewed, queue)
+
+    strata = list(queue.strata["stratum"])
+    sizes = queue.strata["n_errors"].to_numpy(dtype=np.int64)
+    stratum_of = dict(zip(queue.table["row"].astype(int), queue.table["stratum"]))
+    done = reviews[reviews["reviewed"]]
+    tag_sets = [tuple(t.split(";")) if t else () for t in done["tags"]]
+    row_strata = [stratum_of[int(r)] for r in done["row"]]
+    index = {s: i for i, s in enumerate(strata)}
+    n_rev = np.zeros(len(strata), dtype=np.int64)
+    for s in row_strata:
+        n_rev[index[s]] += 1
+
+    per_stratum: dict[str, np.ndarray] = {}
+    for tags, s in zip(tag_sets, row_strata):
+        for tag in tags:
+            per_stratum.setdefault(tag, np.zeros(len(strata), dtype=np.int64))[index[s]] += 1
+    for name in named.values():
+        per_stratum.setdefault(name, np.zeros(len(strata), dtype=np.int64))
+    untagged = np.zeros(len(strata), dtype=np.int64)
+    for tags, s in zip(tag_sets, row_strata):
+        if not tags:
+            untagged[index[s]] += 1
+
+    # candidate names: given, or the tag used most in the stratum
+    slice_names: dict[str, tuple[str, str]] = {}
+    for s in strata:
+        if s == REST:
+            continue
+        if s in named:
+            slice_names[s] = (named[s], "names")
+            continue
+        counts = Counter(t for tags, rs in zip(tag_sets, row_strata) if rs == s for t in tags)
+        if counts:
+            best = min(counts.items(), key=lambda kv: (-kv[1], kv[0]))[0]
+            slice_names[s] = (best, "tags")
+        else:
+            slice_names[s] = ("", "")
+
+    total = int(sizes.sum())
+    rate = queue.error_rate
+    seen = n_rev > 0
+    known_weight = float(sizes[seen].sum()) / total if total else 0.0
+
+    def _row(category, k):
+        est, low, high = stratified_interval(k, n_rev, sizes, confidence_level=confidence_level)
+        if seen.any():
+            _, v = stratified_proportion(k[seen], n_rev[seen], sizes[seen], population=total)
+            se = float(np.sqrt(v)) / known_weight
+        else:
+            se = float("nan")
+        return {"category": category, "n_tagged": int(k.sum()), "share": est,
+                "share_low": low, "share_high": high, "share_se": se,
+                "est_errors": est * total, "est_errors_low": low * total,
+                "est_errors_high": high * total,
+                "headroom": rate * (1.0 - est),          # common practice: e * (1 - share)
+                "headroom_low": rate * (1.0 - high), "headroom_high": rate * (1.0 - low),
+                "slices": ";".join(s for s, (nm, _) in slice_names.items() if nm == category)}
+
+    rows = [_row(c, k) for c, k in per_stratum.items()]
+    rows.sort(key=lambda r: (-(r["share"] if np.isfinite(r["share"]) else 0.0), -r["n_tagged"],
+                             r["category"]))
+    rows.append(_row(UNTAGGED, untagged))
+    categories = pd.DataFrame(rows, columns=list(CATEGORY_COLUMNS))
+    categories = categories.astype({"category": "str", "slices": "str", "n_tagged": np.int64})
+
+    slice_rows = []
+    described = queue.strata.set_index("stratum")["description"]
+    for s in strata:
+        if s == REST:
+            continue
+        i = index[s]
+        name, source = slice_names[s]
+        k = int(per_stratum[name][i]) if name else 0
+        n, N = int(n_rev[i]), int(sizes[i])
+        low, high = wilson_interval_fpc(k, n, N, confidence_level=confidence_level)
+        precision = k / n if n else float("nan")
+        verdict = "confirmed" if low >= threshold else ("rejected" if high < threshold else "undecided")
+        slice_rows.append({"slice_id": s, "description": str(described[s]), "name": name,
+                           "name_source": source, "n_errors": N, "n_reviewed": n, "n_named": k,
+                           "precision": precision, "precision_low": low, "precision_high": high,
+                           "verdict": verdict,
+                           "more_needed": _more_needed(k, n, N, threshold, low, high,
+                                                       confidence_level)})
+    slices = pd.DataFrame(slice_rows, columns=list(SLICE_COLUMNS))
+    slices = slices.astype({"slice_id": "str", "description": "str", "name": "str",
+                            "name_source": "str", "verdict": "str", "n_errors": np.int64,
+                            "n_reviewed": np.int64, "n_named": np.int64,
+                            "more_needed": np.int64})
+
+    order = [r["category"] for r in rows[:-1]]
+    pos = {c: i for i, c in enumerate(order)}
+    co = np.zeros((len(order), len(order)), dtype=np.int64)
+    for tags in tag_sets:
+        idx = [pos[t] for t in tags]
+        for a in idx:
+            for b in idx:
+                co[a, b] += 1
+    cooccurrence = pd.DataFrame(co, index=pd.Index(order, name="category"), columns=order)
+
+    strata_table = queue.strata[["stratum", "description", "n_errors", "weight", "n_queued"]].copy()
+    strata_table["n_reviewed"] = n_rev
+    strata_table["n_untagged"] = untagged
+    reviewed_rows = set(int(r) for r in done["row"])
+    skipped = []
+    for s in strata:
+        queued = queue.rows(s)
+        flags = np.array([int(r) in reviewed_rows for r in queued], dtype=bool)
+        last = np.flatnonzero(flags)
+        skipped.append(int((~flags[:last[-1]]).sum()) if last.size else 0)
+    strata_table["n_skipped"] = np.asarray(skipped, dtype=np.int64)
+
+    rest_weight = float(queue.strata.set_index("stratum")["weight"].get(REST, 0.0))
+    summary = {"n_errors": total, "n_rows": queue.n_rows, "error_rate": rate,
+               "n_queued": len(queue.table), "n_reviewed": int(n_rev.sum()),
+               "unreviewed_weight": 1.0 - known_weight, "rest_weight": rest_weight,
+               "threshold": threshold, "confidence_level": confidence_level,
+               "method": "stratified estimator with finite-population correction; interval = "
+                         "MOVER over per-stratum Wilson limits, united with the score interval; "
+                         "unreviewed strata bounded by none/all"}
+    return Tally(categories=categories, slices=slices, cooccurrence=cooccurrence,
+                 strata=strata_table, reviews=reviews, summary=summary)

@@ -146,6 +146,30 @@ class _Builder:
         self.n_rows.append(n_rows)
         self.n_errors.append(n_errors)
 
+    def reorder(self, order: np.ndarray) -> None:
+        """Put the items in `order` (a permutation)."""
+        for name in ("items", "cols", "bits", "error_bits", "n_rows", "n_errors"):
+            values = getattr(self, name)
+            setattr(self, name, [values[i] for i in order])
+
+
+#: numeric cut points are also sought inside the rows of this many worst categorical items
+CONDITIONAL_ITEMS = 5
+
+
+def _worst_items(builder, errors: np.ndarray, top: int) -> list[np.ndarray]:
+    """Masks of the `top` items with the most excess errors that are clearly worse than the rest."""
+    from slicefind.stats import fisher_greater
+
+    if not builder.items:
+        return []
+    n_rows, n_errors = np.asarray(builder.n_rows), np.asarray(builder.n_errors)
+    total, bad = errors.size, int(errors.sum())
+    excess = n_errors - n_rows * bad / total
+    p = np.atleast_1d(fisher_greater(n_errors, n_rows, bad, total))
+    ranked = [i for i in np.argsort(-excess, kind="stable") if p[i] < 1e-3 and excess[i] > 0][:top]
+    return [bitset.unpack(builder.bits[i][None, :], total)[0] for i in ranked]
+
 
 def _categorical_items(builder, column, index, series, min_rows):
     codes, uniques = pd.factorize(series, sort=True, use_na_sentinel=True)
@@ -245,7 +269,25 @@ def _tree_cuts(xs: np.ndarray, errs: np.ndarray, min_leaf: int, depth: int) -> l
     return sorted(cuts)
 
 
-def _numeric_items(builder, column, index, values, errors, min_rows, n_bins, depth):
+def _conditional_cuts(x: np.ndarray, errors: np.ndarray, within: list[np.ndarray],
+                      min_rows: int) -> set[float]:
+    """Error-aware cuts of `x` inside the rows of each mask in `within` (one split each).
+
+    A threshold that matters on one scanner only (``scanner = S3 and belt_speed >= 2.2``)
+    is blurred in the column's overall error rate; splitting inside the rows of the
+    items that err most finds it where it is.
+    """
+    cuts: set[float] = set()
+    for mask in within:
+        keep = mask & ~np.isnan(x)
+        if keep.sum() < 2 * min_rows:
+            continue
+        order = np.argsort(x[keep], kind="stable")
+        cuts.update(_tree_cuts(x[keep][order], errors[keep][order], min_rows, 1))
+    return cuts
+
+
+def _numeric_items(builder, column, index, values, errors, min_rows, n_bins, depth, within=()):
     x = np.asarray(values, dtype=np.float64)
     present = ~np.isnan(x)
     order = np.argsort(x[present], kind="stable")
@@ -263,6 +305,7 @@ def _numeric_items(builder, column, index, values, errors, min_rows, n_bins, dep
     if depth > 0:
         min_leaf = max(min_rows, xs.size // 100)
         cuts.update(_tree_cuts(xs, errors[present][order], min_leaf, depth))
+        cuts.update(_conditional_cuts(x, errors, list(within), min_rows))
     ordered = sorted(cuts)
     for cut in ordered:
         builder.add(Item(column, "<", cut, f"{column} < {_fmt(cut)}"), index, present & (x < cut))
@@ -296,20 +339,25 @@ def build_items(table: EvalTable, *, min_rows: int, min_errors: int = 1, n_bins:
     """
     builder = _Builder(table.errors, min_rows, min_errors)
     columns = tuple(table.kinds)
-    for index, column in enumerate(columns):
+    numeric = [c for c in columns if table.kinds[c] == NUMERIC]
+    for index, column in enumerate(columns):      # categories and dates first ...
         kind = table.kinds[column]
-        series = table.data[column]
         if kind == CATEGORICAL:
-            _categorical_items(builder, column, index, series, min_rows)
-        elif kind == NUMERIC:
-            values = series.to_numpy()
-            if pd.api.types.is_timedelta64_dtype(series.dtype):
-                values = series.dt.total_seconds().to_numpy()
-            numeric = pd.to_numeric(pd.Series(values), errors="coerce")
-            _numeric_items(builder, column, index, numeric.to_numpy(dtype=np.float64, na_value=np.nan),
-                           table.errors, min_rows, n_bins, tree_depth)
+            _categorical_items(builder, column, index, table.data[column], min_rows)
         elif kind == DATETIME:
-            _datetime_items(builder, column, index, series, min_rows)
+            _datetime_items(builder, column, index, table.data[column], min_rows)
+    within = _worst_items(builder, table.errors, CONDITIONAL_ITEMS) if tree_depth > 0 else []
+    for column in numeric:                         # ... so numeric cuts can look inside them
+        series = table.data[column]
+        values = series.to_numpy()
+        if pd.api.types.is_timedelta64_dtype(series.dtype):
+            values = series.dt.total_seconds().to_numpy()
+        as_float = pd.to_numeric(pd.Series(values), errors="coerce")
+        _numeric_items(builder, column, columns.index(column),
+                       as_float.to_numpy(dtype=np.float64, na_value=np.nan),
+                       table.errors, min_rows, n_bins, tree_depth, within)
+    order = np.argsort(np.asarray(builder.cols, dtype=np.int64), kind="stable")   # column order
+    builder.reorder(order)
     n_err = int(table.errors.sum())
     empty_all = np.zeros((0, bitset.n_words(table.n_rows)), dtype=np.uint64)
     empty_err = np.zeros((0, bitset.n_words(n_err)), dtype=np.uint64)

@@ -81,3 +81,17 @@ def test_bool_items_both_values():
     frame = pd.DataFrame({"fragile": [True, False] * 30})
     texts, _ = _texts(frame, np.arange(60) % 5 == 0)
     assert ["fragile = False", "fragile = True"] == texts
+
+
+def test_threshold_inside_one_category_is_found():
+    """A speed threshold that matters on one scanner only comes out inside that scanner's rows."""
+    rng = np.random.default_rng(4)
+    n = 6000
+    scanner = rng.choice(["S1", "S2", "S3", "S4", "S5", "S6"], n)
+    speed = np.round(rng.uniform(0.8, 2.6, n), 2)
+    bad = (scanner == "S3") & (speed >= 2.2)
+    errors = rng.random(n) < np.where(bad, 0.6, 0.08)
+    frame = pd.DataFrame({"scanner": scanner, "belt_speed": speed})
+    texts, _ = _texts(frame, errors, min_rows=30)
+    cuts = [float(t.split(">= ")[1]) for t in texts if t.startswith("belt_speed >= ")]
+    assert min(abs(c - 2.2) for c in cuts) <= 0.02

@@ -1,0 +1,391 @@
+"""One self-contained HTML report: summary, ranked slices, map, exemplars, tally.
+
+Everything is embedded (figures as base64 PNG drawn with matplotlib, thumbnails as
+data URIs), so the file opens offline and can be mailed around. `render_report` is
+pure (returns the HTML text); `write_report` writes it atomically.
+"""
+from __future__ import annotations
+
+import base64
+import datetime as _dt
+import html
+import io
+import os
+import tempfile
+from dataclasses import dataclass, field
+from typing import Any, Mapping, Sequence
+
+import numpy as np
+import pandas as pd
+
+__all__ = ["ReportInputs", "render_report", "write_report", "CAUTIONS", "MAX_SLICES_SHOWN",
+           "PALETTE"]
+
+#: slices listed in the table (all passing slices are in slices.csv)
+MAX_SLICES_SHOWN = 40
+#: slices whose exemplars and map outlines are shown
+MAX_SLICES_DETAILED = 8
+#: our colours: slate for rows, vermilion for errors, then one per highlighted slice
+PALETTE = ("#3b6e8f", "#d1495b", "#edae49", "#00798c", "#66a182", "#8d6a9f", "#2e4057",
+           "#c17c74", "#a3a948", "#5f0f40")
+_MAX_IMAGE_BYTES = 400_000
+
+CAUTIONS = (
+    "A slice is a lead for investigation, not proof of cause: rows that share a condition "
+    "may err for a reason the condition only travels with.",
+    "Slices defined by people's attributes (age, sex, origin, language, ...) call for a "
+    "fairness review of their own; a higher error rate there is a finding to examine with "
+    "the people affected, not a number to optimise away.",
+    "Small samples give wide intervals, and the intervals here say so: read the bounds, "
+    "not only the estimates.",
+)
+
+
+@dataclass(frozen=True)
+class ReportInputs:
+    """What the report shows besides the slice table (all optional)."""
+
+    map_xy: np.ndarray | None = None                  # (n_analysed, 2) coordinates
+    descriptions: Mapping[str, Any] = field(default_factory=dict)   # slice_id -> SliceDescription
+    images: np.ndarray | None = None                  # (n_input, h, w) pixel arrays
+    image_paths: Sequence[str] | None = None          # per input row, a path to an image file
+    texts: Sequence[str] | None = None                # per input row, text to show
+    tally: Any = None                                 # a tally.Tally
+    simulated_review: bool = False
+    title: str = "slicefind report"
+    notes: Sequence[str] = ()
+
+
+def _png(fig) -> str:
+    """A matplotlib figure as a data URI (the figure is closed)."""
+    import matplotlib.pyplot as plt
+
+    buffer = io.BytesIO()
+    fig.savefig(buffer, format="png", dpi=110, bbox_inches="tight")
+    plt.close(fig)
+    return "data:image/png;base64," + base64.b64encode(buffer.getvalue()).decode("ascii")
+
+
+def _pyplot():
+    import matplotlib
+
+    matplotlib.use("Agg", force=False)
+    import matplotlib.pyplot as plt
+
+    return plt
+
+
+def _thumbnail_from_pixels(pixels: np.ndarray) -> str:
+    """A small grey PNG data URI of one image array (upscaled without smoothing)."""
+    plt = _pyplot()
+    pixels = np.asarray(pixels, dtype=np.float64)
+    scale = max(1, 64 // max(pixels.shape[:2]))
+    big = np.kron(pixels, np.ones((scale, scale))) if pixels.ndim == 2 else pixels
+    buffer = io.BytesIO()
+    plt.imsave(buffer, big, cmap="gray_r", format="png")
+    return "data:image/png;base64," + base64.b64encode(buffer.getvalue()).decode("ascii")
+
+
+def _thumbnail_from_path(path: str) -> str | None:
+    """A data URI of an image file, or None when unreadable or too large."""
+    kinds = {".png": "image/png", ".jpg": "image/jpeg", ".jpeg": "image/jpeg", ".gif": "image/gif",
+             ".webp": "image/webp", ".bmp": "image/bmp"}
+    mime = kinds.get(os.path.splitext(str(path))[1].lower())
+    try:
+        if mime is None or os.path.getsize(path) > _MAX_IMAGE_BYTES:
+            return None
+        with open(path, "rb") as handle:
+            return f"data:{mime};base64," + base64.b64encode(handle.read()).decode("ascii")
+    except OSError:
+        return None
+
+
+def _interval_bar(rate: float, low: float, high: float, overall: float, width: int = 140) -> str:
+    """Inline SVG: the error rate as a dot with its interval, the overall rate as a tick."""
+    def x(v):
+        return 4 + (width - 8) * min(1.0, max(0.0, v))
+
+    return (f'<svg class="bar" width="{width}" height="14" role="img" '
+            f'aria-label="error rate {rate:.1%}, interval {low:.1%} to {high:.1%}">'
+            f'<line x1="4" y1="7" x2="{width - 4}" y2="7" stroke="#d8dee4"/>'
+            f'<line x1="{x(overall):.1f}" y1="1" x2="{x(overall):.1f}" y2="13" stroke="{PALETTE[0]}"/>'
+            f'<line x1="{x(low):.1f}" y1="7" x2="{x(high):.1f}" y2="7" stroke="{PALETTE[1]}" stroke-width="3"/>'
+            f'<circle cx="{x(rate):.1f}" cy="7" r="3.5" fill="{PALETTE[1]}"/></svg>')
+
+
+def _map_figure(found, map_xy: np.ndarray, top_ids: Sequence[str]) -> str:
+    """The 2-D map: rows in slate, errors in vermilion, top slices outlined."""
+    plt = _pyplot()
+    table = found.eval_table
+    fig, ax = plt.subplots(figsize=(7.5, 6.0))
+    errors = table.errors
+    ax.scatter(map_xy[~errors, 0], map_xy[~errors, 1], s=3, c=PALETTE[0], alpha=0.25,
+               linewidths=0, label="correct")
+    ax.scatter(map_xy[errors, 0], map_xy[errors, 1], s=5, c=PALETTE[1], alpha=0.7,
+               linewidths=0, label="error")
+    position = {int(p): i for i, p in enumerate(table.positions)}
+    for k, sid in enumerate(top_ids):
+        rows = np.array([position[int(r)] for r in found.rows(sid) if int(r) in position], dtype=int)
+        if rows.size == 0:
+            continue
+        colour = PALETTE[2 + k % (len(PALETTE) - 2)]
+        pts = map_xy[rows]
+        ax.scatter(pts[:, 0], pts[:, 1], s=14, facecolors="none", edgecolors=colour, linewidths=0.6,
+                   alpha=0.8, label=sid)
+        centre = np.median(pts, axis=0)
+        ax.annotate(sid, centre, fontsize=10, fontweight="bold", color=colour,
+                    bbox=dict(boxstyle="round,pad=0.2", fc="white", ec=colour, alpha=0.85))
+    ax.set_xticks([])
+    ax.set_yticks([])
+    ax.set_title("Embedding map (2-D): errors and the top slices")
+    ax.legend(loc="best", fontsize=8, markerscale=2, frameon=True)
+    return _png(fig)
+
+
+def _category_figure(categories: pd.DataFrame, error_rate: float) -> str:
+    """Share of errors per category with its interval, and the headroom it leaves."""
+    plt = _pyplot()
+    cats = categories.reset_index(drop=True)
+    n = len(cats)
+    fig, ax = plt.subplots(figsize=(7.5, 0.55 * n + 1.4))
+    y = np.arange(n)[::-1]
+    share = cats["share"].to_numpy(dtype=float)
+    low = cats["share_low"].to_numpy(dtype=float)
+    high = cats["share_high"].to_numpy(dtype=float)
+    ax.barh(y, share, color=PALETTE[3], alpha=0.85, height=0.6)
+    ax.errorbar(share, y, xerr=[np.maximum(share - low, 0), np.maximum(high - share, 0)], fmt="none",
+                ecolor=PALETTE[6], capsize=4, lw=1.2)
+    for yi, s, h, hr in zip(y, share, high, cats["headroom"].to_numpy(dtype=float)):
+        ax.text(min(1.0, h) + 0.01, yi, f"{s:.0%}  (fixed: error rate {hr:.2%})", va="center",
+                fontsize=8)
+    ax.set_yticks(y, labels=[str(c) for c in cats["category"]])
+    ax.set_xlim(0, 1.25)
+    ax.set_xlabel(f"share of all errors (95% interval); overall error rate {error_rate:.2%}")
+    ax.set_title("Error categories from the review")
+    return _png(fig)
+
+
+def _fmt(value, kind: str) -> str:
+    if value is None or (isinstance(value, float) and np.isnan(value)):
+        return ""
+    if kind == "pct":
+        return f"{value:.1%}"
+    if kind == "p":
+        return f"{value:.2g}"
+    if kind == "int":
+        return f"{int(value):,}"
+    if kind == "f1":
+        return f"{value:.1f}"
+    if kind == "f2":
+        return f"{value:.2f}"
+    return html.escape(str(value))
+
+
+def _table(frame: pd.DataFrame, spec: Sequence[tuple[str, str, str]], css: str = "") -> str:
+    """An HTML table from `frame` with (column, header, format) columns."""
+    head = "".join(f"<th>{html.escape(h)}</th>" for _, h, _ in spec)
+    body = []
+    for _, row in frame.iterrows():
+        cells = "".join(f"<td class='{k}'>{_fmt(row.get(c), k)}</td>" for c, _, k in spec)
+        body.append(f"<tr>{cells}</tr>")
+    return f"<table class='{css}'><thead><tr>{head}</tr></thead><tbody>{''.join(body)}</tbody></table>"
+
+
+def _exemplar_cells(found, description, inputs: ReportInputs) -> str:
+    """Thumbnails or text snippets of one slice's exemplars."""
+    table = found.eval_table
+    cells = []
+    for _, ex in description.exemplars.iterrows():
+        row = int(ex["row"])
+        visual = ""
+        if inputs.images is not None and row < len(inputs.images):
+            visual = f"<img class='thumb' alt='row {row}' src='{_thumbnail_from_pixels(inputs.images[row])}'>"
+        elif inputs.image_paths is not None and row < len(inputs.image_paths):
+            uri = _thumbnail_from_path(inputs.image_paths[row])
+            visual = (f"<img class='thumb' alt='row {row}' src='{uri}'>" if uri else
+                      f"<div class='missing'>{html.escape(str(inputs.image_paths[row]))}</div>")
+        elif inputs.texts is not None and row < len(inputs.texts):
+            visual = f"<div class='snippet'>{html.escape(str(inputs.texts[row])[:280])}</div>"
+        ident = ""
+        if table.id_column and table.id_column in ex:
+            ident = f"{html.escape(str(ex[table.id_column]))} · "
+        label = ""
+        if ex.get("label") is not None and not pd.isna(ex.get("label")):
+            label = f"{html.escape(str(ex['label']))} → {html.escape(str(ex['prediction']))}"
+        mark = "error" if bool(ex["error"]) else "correct"
+        cells.append(f"<figure class='ex {mark}'>{visual}<figcaption>{ident}row {row}<br>"
+                     f"{label} <span class='{mark}'>{mark}</span></figcaption></figure>")
+    return "".join(cells)
+
+
+_CSS = """
+body{font-family:system-ui,-apple-system,Segoe UI,sans-serif;margin:24px auto;max-width:1180px;
+color:#1f2933;line-height:1.4;padding:0 16px}
+h1{font-size:1.6em;margin-bottom:.2em} h2{margin-top:1.6em;border-bottom:2px solid #3b6e8f;
+padding-bottom:4px;font-size:1.25em} .sub{color:#52606d}
+.cards{display:flex;gap:14px;flex-wrap:wrap;margin:12px 0}
+.card{background:#f0f4f8;border-radius:8px;padding:10px 16px;min-width:140px}
+.card b{display:block;font-size:1.45em;color:#2e4057}
+.caution{background:#fff8e6;border-left:4px solid #edae49;padding:8px 14px;margin:12px 0}
+.simulated{background:#fde8ea;border-left:4px solid #d1495b;padding:8px 14px;font-weight:600}
+table{border-collapse:collapse;width:100%;font-size:.88em;margin:8px 0}
+th{background:#2e4057;color:#fff;text-align:left;padding:5px 6px;position:sticky;top:0}
+td{border-bottom:1px solid #e4e7eb;padding:4px 6px;vertical-align:top}
+td.int,td.pct,td.p,td.f1,td.f2{text-align:right;font-variant-numeric:tabular-nums}
+tr:nth-child(even) td{background:#fafbfc} .small{font-size:.8em;color:#52606d}
+.slice{border:1px solid #d9e2ec;border-radius:8px;padding:10px 14px;margin:12px 0}
+.ex{display:inline-block;margin:4px;text-align:center;font-size:.75em;width:108px;vertical-align:top}
+.thumb{width:64px;height:64px;image-rendering:pixelated;border:1px solid #bcccdc}
+.ex .error{color:#d1495b;font-weight:600} .ex .correct{color:#3b6e8f}
+.snippet{font-size:.85em;text-align:left;background:#f5f7fa;padding:4px;max-height:90px;overflow:auto}
+.verdict-confirmed{color:#00798c;font-weight:700} .verdict-rejected{color:#d1495b;font-weight:700}
+.verdict-undecided{color:#8d6a9f;font-weight:700} img.figure{max-width:100%}
+"""
+
+_CHECK_SCRIPT = """
+<script>
+window.addEventListener('load', function () {
+  var imgs = Array.prototype.slice.call(document.images);
+  var ok = imgs.filter(function (i) { return i.complete && i.naturalWidth > 0; }).length;
+  document.body.setAttribute('data-images', String(imgs.length));
+  document.body.setAttribute('data-images-decoded', String(ok));
+});
+</script>
+"""
+
+
+def render_report(found, inputs: ReportInputs | None = None) -> str:
+    """The report's HTML text for a `find_slices` result (and optionally a tally)."""
+    inputs = inputs or ReportInputs()
+    table = found.eval_table
+    slices = found.table.head(MAX_SLICES_SHOWN).copy()
+    overall = found.error_rate
+    parts = [f"<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'>"
+             f"<title>{html.escape(inputs.title)}</title><style>{_CSS}</style></head><body>"]
+    stamp = _dt.datetime.now().strftime("%Y-%m-%d %H:%M")
+    parts.append(f"<h1>{html.escape(inputs.title)}</h1><p class='sub'>written {stamp} · error "
+                 f"definition: {html.escape(str(table.error_definition))}</p>")
+    if inputs.simulated_review:
+        parts.append("<p class='simulated' id='simulated'>The reviews in this report were made by a "
+                     "SIMULATED reviewer (the built-in demo tags each example from the planted "
+                     "ground truth). With real data, a person reviews the queue.</p>")
+    cards = [("rows analysed", f"{found.n_rows:,}"), ("errors", f"{found.n_errors:,}"),
+             ("error rate", f"{overall:.2%}"), ("slices passing FDR", f"{len(found.table):,}"),
+             ("candidates tested", f"{len(found.tested):,}")]
+    parts.append("<div class='cards'>" + "".join(f"<div class='card'><b>{v}</b>{k}</div>"
+                                                 for k, v in cards) + "</div>")
+    for note in inputs.notes:
+        parts.append(f"<p class='small'>{html.escape(note)}</p>")
+    parts.append("<div class='caution'><b>Read with care.</b><ul>" +
+                 "".join(f"<li>{html.escape(c)}</li>" for c in CAUTIONS) + "</ul></div>")
+
+    parts.append("<h2 id='slices'>Slices, ranked by excess errors</h2>")
+    if len(slices):
+        slices["interval"] = ""
+        rows_html = []
+        for _, s in slices.iterrows():
+            bar = _interval_bar(float(s["error_rate"]), float(s["ci_low"]), float(s["ci_high"]), overall)
+            extra = []
+            if s.get("aliases"):
+                extra.append(f"same rows as: {html.escape(str(s['aliases']))}")
+            if s.get("folded"):
+                extra.append(f"explains: {html.escape(str(s['folded']))}")
+            rows_html.append(
+                f"<tr><td><b>{html.escape(str(s['slice_id']))}</b></td><td>{html.escape(str(s['source']))}</td>"
+                f"<td>{html.escape(str(s['description']))}"
+                + (f"<div class='small'>{'<br>'.join(extra)}</div>" if extra else "") +
+                f"</td><td class='int'>{int(s['n_rows']):,}</td><td class='int'>{int(s['n_errors']):,}</td>"
+                f"<td class='pct'>{s['error_rate']:.1%}<br><span class='small'>{s['ci_low']:.1%}–{s['ci_high']:.1%}</span></td>"
+                f"<td>{bar}</td><td class='pct'>{s['error_share']:.1%}</td><td class='f1'>{s['excess_errors']:.1f}</td>"
+                f"<td class='f2'>{s['lift']:.2f}</td><td class='p'>{s['q_value']:.2g}</td></tr>")
+        parts.append("<table id='slice-table'><thead><tr><th>id</th><th>source</th><th>description</th>"
+                     "<th>rows</th><th>errors</th><th>error rate</th><th>95% interval (tick: overall)</th>"
+                     "<th>share of errors</th><th>excess errors</th><th>lift</th><th>q-value</th></tr></thead>"
+                     "<tbody>" + "".join(rows_html) + "</tbody></table>")
+        if len(found.table) > MAX_SLICES_SHOWN:
+            parts.append(f"<p class='small'>{len(found.table) - MAX_SLICES_SHOWN} more in slices.csv.</p>")
+    else:
+        parts.append("<p>No slice passes the false discovery rate: at this size, no group of rows "
+                     "errs detectably more often than the rest. The tally of a random review "
+                     "sample of errors (the <i>rest</i> stratum) is still meaningful.</p>")
+
+    top_ids = list(found.table["slice_id"].head(MAX_SLICES_DETAILED))
+    parts.append("<h2 id='map'>Map</h2>")
+    if inputs.map_xy is not None and len(inputs.map_xy) == found.n_rows:
+        parts.append(f"<img class='figure' id='map-figure' alt='embedding map' "
+                     f"src='{_map_figure(found, np.asarray(inputs.map_xy), top_ids)}'>")
+    else:
+        parts.append("<p class='small'>No embeddings were given, so there is no map.</p>")
+
+    if inputs.descriptions:
+        parts.append("<h2 id='exemplars'>What the top slices look like</h2>")
+        for sid in top_ids:
+            desc = inputs.descriptions.get(sid)
+            if desc is None:
+                continue
+            conf = ", ".join(f"{r['label']} → {r['prediction']} ({int(r['n_errors'])})"
+                             for _, r in desc.confusions.head(3).iterrows()) if len(desc.confusions) else ""
+            parts.append(f"<div class='slice' id='slice-{html.escape(sid)}'><b>{html.escape(sid)}</b> "
+                         f"{html.escape(desc.summary)}"
+                         + (f"<div class='small'>commonest confusions: {html.escape(conf)}</div>" if conf else "")
+                         + f"<div>{_exemplar_cells(found, desc, inputs)}</div></div>")
+
+    result = inputs.tally
+    if result is not None:
+        parts.append("<h2 id='tally'>Review tally</h2>")
+        summary = result.summary
+        parts.append(f"<p>{int(summary.get('n_reviewed', 0))} of {int(summary.get('n_queued', 0))} "
+                     f"queued errors reviewed. Shares are of <i>all</i> {found.n_errors:,} errors, "
+                     "estimated stratum by stratum; strata not reviewed yet widen the intervals.</p>")
+        cats = result.categories
+        if len(cats):
+            parts.append(f"<img class='figure' id='category-chart' alt='category chart' "
+                         f"src='{_category_figure(cats, overall)}'>")
+            parts.append(_table(cats, [("category", "category", "text"), ("n_tagged", "reviewed with it", "int"),
+                                       ("share", "share of errors", "pct"), ("share_low", "low", "pct"),
+                                       ("share_high", "high", "pct"), ("est_errors", "est. errors", "f1"),
+                                       ("headroom", "error rate if fixed", "pct")], "categories"))
+        if len(result.slices):
+            verdicts = result.slices.copy()
+            parts.append("<h2 id='verdicts'>Verdicts on the proposed slices</h2>")
+            rows_html = []
+            for _, v in verdicts.iterrows():
+                rows_html.append(
+                    f"<tr><td><b>{html.escape(str(v['slice_id']))}</b></td><td>{html.escape(str(v.get('name', '')))}</td>"
+                    f"<td>{html.escape(str(v.get('description', '')))}</td><td class='int'>{int(v['n_reviewed'])}</td>"
+                    f"<td class='pct'>{_fmt(v['precision'], 'pct')}</td>"
+                    f"<td class='pct'>{_fmt(v['precision_low'], 'pct')}–{_fmt(v['precision_high'], 'pct')}</td>"
+                    f"<td class='verdict-{html.escape(str(v['verdict']))}'>{html.escape(str(v['verdict']))}</td>"
+                    f"<td class='int'>{_fmt(v['more_needed'], 'int')}</td></tr>")
+            parts.append("<table id='verdict-table'><thead><tr><th>id</th><th>name</th><th>description</th>"
+                         "<th>reviewed</th><th>precision</th><th>95% interval</th><th>verdict</th>"
+                         "<th>more to review</th></tr></thead><tbody>" + "".join(rows_html) +
+                         "</tbody></table>")
+
+    if table.skipped:
+        parts.append("<h2 id='skipped'>Columns not mined</h2><ul class='small'>" +
+                     "".join(f"<li><b>{html.escape(str(c))}</b>: {html.escape(str(r))}</li>"
+                             for c, r in table.skipped.items()) + "</ul>")
+    params = ", ".join(f"{k}={v}" for k, v in found.params.items() if k not in ("exclude",))
+    parts.append(f"<p class='small'>Options: {html.escape(params)}</p>")
+    parts.append(_CHECK_SCRIPT + "</body></html>")
+    return "".join(parts)
+
+
+def write_report(path, found, inputs: ReportInputs | None = None) -> str:
+    """Write the report to `path` atomically (a temporary file, then a rename); returns the path."""
+    text = render_report(found, inputs)
+    path = os.fspath(path)
+    folder = os.path.dirname(os.path.abspath(path))
+    os.makedirs(folder, exist_ok=True)
+    handle, temp = tempfile.mkstemp(dir=folder, prefix=".report-", suffix=".html")
+    try:
+        with os.fdopen(handle, "w", encoding="utf-8") as out:
+            out.write(text)
+        os.replace(temp, path)
+    except BaseException:
+        if os.path.exists(temp):
+            os.unlink(temp)
+        raise
+    return path
+

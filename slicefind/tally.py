@@ -48,6 +48,7 @@ SLICE_COLUMNS = ("slice_id", "description", "name", "name_source", "n_errors", "
                  "n_named", "precision", "precision_low", "precision_high", "verdict",
                  "more_needed")
 _REQUIRED = ("row", "reviewed", "tags")
+_SPACES = re.compile(r"\s+")
 
 
 def normalize_tag(text: str) -> str:
@@ -59,7 +60,7 @@ def normalize_tag(text: str) -> str:
     'faded ink'
     """
     text = unicodedata.normalize("NFC", str(text))
-    return re.sub(r"\s+", " ", text).strip().lower()
+    return _SPACES.sub(" ", text).strip().lower()
 
 
 @dataclass(frozen=True, repr=False)
@@ -111,6 +112,8 @@ class Tally:
 
 def _cell(value) -> str:
     """A sheet cell as trimmed text: missing -> '', 1.0 -> '1', True -> 'true'."""
+    if type(value) is str:
+        return value.strip()
     if value is None:
         return ""
     if isinstance(value, (bool, np.bool_)):
@@ -325,7 +328,7 @@ def read_reviews(reviewed, queue: Queue) -> pd.DataFrame:
                                     "true/false, x or leave it empty)"))
             continue
         raw_tags = cells[col["tags"]]
-        tags = tuple(sorted({normalize_tag(t) for t in raw_tags.split(";") if normalize_tag(t)}))
+        tags = tuple(sorted({t for t in map(normalize_tag, raw_tags.split(";")) if t})) if raw_tags else ()
         if UNTAGGED in tags:
             problems.append((where, f"the tag {UNTAGGED!r} is reserved for reviewed rows "
                                     "without tags; leave tags empty instead"))

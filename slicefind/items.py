@@ -134,17 +134,35 @@ class _Builder:
         if not self.wanted(n_rows, n_errors, mask.size):
             return
         packed = bitset.pack(mask)[0]
+        if self._keep(item, column_index, n_rows, n_errors, packed,
+                      lambda j: np.array_equal(self.bits[j], packed)):
+            self.bits.append(packed)
+            self.error_bits.append(bitset.pack(error_mask)[0])
+
+    def add_counted(self, item: Item, column_index: int, n_rows: int, n_errors: int,
+                    n_total: int, signature, payload) -> bool:
+        """`add` for engines that count elsewhere: `signature` decides identical rows
+        (equal signatures = equal rows) and `payload` is kept in place of the bitsets."""
+        if not self.wanted(n_rows, n_errors, n_total):
+            return False
+        if self._keep(item, column_index, n_rows, n_errors, signature,
+                      lambda j: self.bits[j][0] == signature):
+            self.bits.append((signature, payload))
+            self.error_bits.append(None)
+            return True
+        return False
+
+    def _keep(self, item, column_index, n_rows, n_errors, signature, same) -> bool:
         key = (column_index, n_rows, n_errors)
         for j in self.seen.get(key, []):       # identical rows: keep the first (simplest) text
-            if np.array_equal(self.bits[j], packed):
-                return
+            if same(j):
+                return False
         self.seen.setdefault(key, []).append(len(self.items))
         self.items.append(item)
         self.cols.append(column_index)
-        self.bits.append(packed)
-        self.error_bits.append(bitset.pack(error_mask)[0])
         self.n_rows.append(n_rows)
         self.n_errors.append(n_errors)
+        return True
 
     def reorder(self, order: np.ndarray) -> None:
         """Put the items in `order` (a permutation)."""
@@ -171,29 +189,48 @@ def _worst_items(builder, errors: np.ndarray, top: int) -> list[np.ndarray]:
     return [bitset.unpack(builder.bits[i][None, :], total)[0] for i in ranked]
 
 
+def categorical_items(column: str, uniques, counts: np.ndarray, min_rows: int):
+    """The candidate items of a categorical column, in order: (Item, codes it selects).
+
+    `uniques` are the column's distinct values in ``pd.factorize(sort=True)`` order and
+    `counts` their rows; code -1 stands for missing (always a candidate: it is dropped
+    later if no row is missing).
+    """
+    out = []
+    rare = [k for k in range(len(uniques)) if counts[k] < min_rows]
+    for k in range(len(uniques)):
+        if counts[k] >= min_rows:
+            value = uniques[k]
+            out.append((Item(column, "=", value, f"{column} = {_format_value(value)}"), (k,)))
+    if len(rare) >= 2:
+        values = tuple(uniques[k] for k in rare)
+        shown = ", ".join(_format_value(v) for v in values[:3])
+        more = f", … {len(values)} values" if len(values) > 3 else ""
+        out.append((Item(column, "rare", values, f"{column} in {{{shown}{more}}}"), tuple(rare)))
+    out.append((Item(column, "missing", None, f"{column} is missing"), (-1,)))
+    return out
+
+
+def code_mask(codes: np.ndarray, selected: tuple[int, ...]) -> np.ndarray:
+    """Rows whose code is in `selected`."""
+    return codes == selected[0] if len(selected) == 1 else np.isin(codes, selected)
+
+
 def _categorical_items(builder, column, index, series, min_rows):
     codes, uniques = pd.factorize(series, sort=True, use_na_sentinel=True)
     codes = codes.astype(np.int32, copy=False)
     error_codes = codes[builder.errors]
     counts = np.bincount(codes[codes >= 0], minlength=len(uniques))
     error_counts = np.bincount(error_codes[error_codes >= 0], minlength=len(uniques))
-    rare = [k for k in range(len(uniques)) if counts[k] < min_rows]
-    for k in range(len(uniques)):
-        if builder.wanted(int(counts[k]), int(error_counts[k]), codes.size):
-            value = uniques[k]
-            builder.add(Item(column, "=", value, f"{column} = {_format_value(value)}"), index,
-                        codes == k, error_codes == k)
-    if len(rare) >= 2:
-        values = tuple(uniques[k] for k in rare)
-        shown = ", ".join(_format_value(v) for v in values[:3])
-        more = f", … {len(values)} values" if len(values) > 3 else ""
-        text = f"{column} in {{{shown}{more}}}"
-        builder.add(Item(column, "rare", values, text), index, np.isin(codes, rare),
-                    np.isin(error_codes, rare))
-    missing = codes < 0
-    if missing.any():
-        builder.add(Item(column, "missing", None, f"{column} is missing"), index, missing,
-                    error_codes < 0)
+    n_missing, e_missing = int((codes < 0).sum()), int((error_codes < 0).sum())
+    for item, selected in categorical_items(column, uniques, counts, min_rows):
+        if item.op == "=":       # skip building masks that cannot be kept
+            k = selected[0]
+            if not builder.wanted(int(counts[k]), int(error_counts[k]), codes.size):
+                continue
+        if item.op == "missing" and not builder.wanted(n_missing, e_missing, codes.size):
+            continue
+        builder.add(item, index, code_mask(codes, selected), code_mask(error_codes, selected))
 
 
 def _split_score(n_left, e_left, n_node, e_node):
@@ -287,13 +324,14 @@ def _conditional_cuts(x: np.ndarray, errors: np.ndarray, within: list[np.ndarray
     return cuts
 
 
-def _numeric_items(builder, column, index, values, errors, min_rows, n_bins, depth, within=()):
-    x = np.asarray(values, dtype=np.float64)
+def numeric_cuts(x: np.ndarray, errors: np.ndarray, *, min_rows: int, n_bins: int, depth: int,
+                 within=()) -> list[float]:
+    """Cut points of one numeric column: quantiles, error-aware splits, splits inside `within`."""
     present = ~np.isnan(x)
     order = np.argsort(x[present], kind="stable")
     xs = x[present][order]
     if xs.size < 2:
-        return
+        return []
     cuts = set()
     if n_bins > 1:
         tolerance = max(1, int(0.01 * xs.size))   # a quantile may move by 1% of rows to read well
@@ -306,28 +344,39 @@ def _numeric_items(builder, column, index, values, errors, min_rows, n_bins, dep
         min_leaf = max(min_rows, xs.size // 100)
         cuts.update(_tree_cuts(xs, errors[present][order], min_leaf, depth))
         cuts.update(_conditional_cuts(x, errors, list(within), min_rows))
-    ordered = sorted(cuts)
-    for cut in ordered:
-        builder.add(Item(column, "<", cut, f"{column} < {_fmt(cut)}"), index, present & (x < cut))
-        builder.add(Item(column, ">=", cut, f"{column} >= {_fmt(cut)}"), index, present & (x >= cut))
-    for low, high in zip(ordered[:-1], ordered[1:]):
-        mask = present & (x >= low) & (x < high)
-        builder.add(Item(column, "range", (low, high), f"{_fmt(low)} <= {column} < {_fmt(high)}"), index, mask)
-    if not present.all():
-        builder.add(Item(column, "missing", None, f"{column} is missing"), index, ~present)
+    return sorted(cuts)
 
 
-def _datetime_items(builder, column, index, series, min_rows):
+def numeric_masks(column: str, x: np.ndarray, cuts):
+    """(Item, mask) of a numeric column's candidates for the given cut points, in order."""
+    present = ~np.isnan(x)
+    for cut in cuts:
+        yield Item(column, "<", cut, f"{column} < {_fmt(cut)}"), present & (x < cut)
+        yield Item(column, ">=", cut, f"{column} >= {_fmt(cut)}"), present & (x >= cut)
+    for low, high in zip(cuts[:-1], cuts[1:]):
+        yield (Item(column, "range", (low, high), f"{_fmt(low)} <= {column} < {_fmt(high)}"),
+               present & (x >= low) & (x < high))
+    yield Item(column, "missing", None, f"{column} is missing"), ~present
+
+
+def numeric_values(series: pd.Series) -> np.ndarray:
+    """A numeric (or timedelta) column as float64 with NaN for missing."""
+    values = series.dt.total_seconds() if pd.api.types.is_timedelta64_dtype(series.dtype) else series
+    return pd.to_numeric(pd.Series(values), errors="coerce").to_numpy(dtype=np.float64,
+                                                                       na_value=np.nan)
+
+
+def datetime_masks(column: str, series: pd.Series):
+    """(Item, mask) of a datetime column: hour of day, weekday, missing."""
     stamps = pd.to_datetime(series)
     present = stamps.notna().to_numpy()
     hours = stamps.dt.hour.to_numpy(dtype=np.float64, na_value=np.nan)
     days = stamps.dt.day_of_week.to_numpy(dtype=np.float64, na_value=np.nan)
     for h in range(24):
-        builder.add(Item(column, "hour", h, f"hour of {column} = {h}"), index, hours == h)
+        yield Item(column, "hour", h, f"hour of {column} = {h}"), hours == h
     for d in range(7):
-        builder.add(Item(column, "weekday", d, f"weekday of {column} = {WEEKDAYS[d]}"), index, days == d)
-    if not present.all():
-        builder.add(Item(column, "missing", None, f"{column} is missing"), index, ~present)
+        yield Item(column, "weekday", d, f"weekday of {column} = {WEEKDAYS[d]}"), days == d
+    yield Item(column, "missing", None, f"{column} is missing"), ~present
 
 
 def build_items(table: EvalTable, *, min_rows: int, min_errors: int = 1, n_bins: int = 4,
@@ -345,17 +394,15 @@ def build_items(table: EvalTable, *, min_rows: int, min_errors: int = 1, n_bins:
         if kind == CATEGORICAL:
             _categorical_items(builder, column, index, table.data[column], min_rows)
         elif kind == DATETIME:
-            _datetime_items(builder, column, index, table.data[column], min_rows)
+            for item, mask in datetime_masks(column, table.data[column]):
+                builder.add(item, index, mask)
     within = _worst_items(builder, table.errors, CONDITIONAL_ITEMS) if tree_depth > 0 else []
     for column in numeric:                         # ... so numeric cuts can look inside them
-        series = table.data[column]
-        values = series.to_numpy()
-        if pd.api.types.is_timedelta64_dtype(series.dtype):
-            values = series.dt.total_seconds().to_numpy()
-        as_float = pd.to_numeric(pd.Series(values), errors="coerce")
-        _numeric_items(builder, column, columns.index(column),
-                       as_float.to_numpy(dtype=np.float64, na_value=np.nan),
-                       table.errors, min_rows, n_bins, tree_depth, within)
+        x = numeric_values(table.data[column])
+        cuts = numeric_cuts(x, table.errors, min_rows=min_rows, n_bins=n_bins, depth=tree_depth,
+                            within=within)
+        for item, mask in numeric_masks(column, x, cuts):
+            builder.add(item, columns.index(column), mask)
     order = np.argsort(np.asarray(builder.cols, dtype=np.int64), kind="stable")   # column order
     builder.reorder(order)
     n_err = int(table.errors.sum())

@@ -21,7 +21,7 @@ from slicefind import bitset
 from slicefind.items import ItemSet
 from slicefind.stats import fisher_greater
 
-__all__ = ["RuleCounts", "search_rules", "ENGINES", "refinement_pvalues", "fold_into_refinements",
+__all__ = ["RuleCounts", "search_rules", "search_levels", "ENGINES", "refinement_pvalues", "fold_into_refinements",
            "rule_bits"]
 
 ENGINES = ("bitset", "mlxtend")
@@ -98,28 +98,35 @@ def _offsets(u: np.ndarray, n_prefix: int) -> np.ndarray:
     return np.concatenate([[0], np.cumsum(np.bincount(u, minlength=n_prefix))]).astype(np.int64)
 
 
-def _search_bitset(items: ItemSet, max_terms: int, min_rows: int, min_errors: int, kernel: str):
-    """Levelwise bitset search; see the module docstring."""
-    base = max(2, len(items))
-    level = np.arange(len(items), dtype=np.int64)[:, None]
-    keep = (items.n_rows >= min_rows) & (items.n_errors >= min_errors)
-    levels, rows, errs = [level[keep]], [items.n_rows[keep]], [items.n_errors[keep]]
+def search_levels(n_rows: np.ndarray, n_errors: np.ndarray, column_of: np.ndarray, *,
+                  max_terms: int, min_rows: int, min_errors: int, count_errors, count_rows,
+                  words_per_count=(0, 0)) -> RuleCounts:
+    """The levelwise search, whatever does the counting.
+
+    ``count_errors(prefixes, offsets, extensions)`` and ``count_rows(...)`` return the
+    error and row counts of each candidate ``prefix + (extension,)`` (see
+    `bitset.count_extensions`); the in-memory engine counts packed bitsets, the Dask
+    engine sums the same kernel over partitions. Pruning and joining stay here, so both
+    give identical rules and counts.
+    """
+    base = max(2, len(n_rows))
+    level = np.arange(len(n_rows), dtype=np.int64)[:, None]
+    keep = (n_rows >= min_rows) & (n_errors >= min_errors)
+    levels, rows, errs = [level[keep]], [n_rows[keep]], [n_errors[keep]]
     words = 0
-    generated = [int(len(items))]
+    generated = [int(len(n_rows))]
     for _ in range(2, max_terms + 1):
         current = levels[-1]
-        u, ext = _join(current, items.column_of, base)
+        u, ext = _join(current, column_of, base)
         generated.append(int(u.size))
         if u.size == 0:
             break
-        n_err = bitset.count_extensions(items.error_bits, current, _offsets(u, len(current)), ext,
-                                        engine=kernel)
-        words += int(u.size) * items.error_bits.shape[1]
+        n_err = count_errors(current, _offsets(u, len(current)), ext)
+        words += int(u.size) * words_per_count[0]
         ok = n_err >= min_errors
         u, ext, n_err = u[ok], ext[ok], n_err[ok]
-        n_row = bitset.count_extensions(items.bits, current, _offsets(u, len(current)), ext,
-                                        engine=kernel)
-        words += int(u.size) * items.bits.shape[1]
+        n_row = count_rows(current, _offsets(u, len(current)), ext)
+        words += int(u.size) * words_per_count[1]
         ok = n_row >= min_rows
         u, ext, n_err, n_row = u[ok], ext[ok], n_err[ok], n_row[ok]
         if u.size == 0:
@@ -128,6 +135,20 @@ def _search_bitset(items: ItemSet, max_terms: int, min_rows: int, min_errors: in
         rows.append(n_row)
         errs.append(n_err)
     return RuleCounts(tuple(levels), tuple(rows), tuple(errs), words, tuple(generated))
+
+
+def _search_bitset(items: ItemSet, max_terms: int, min_rows: int, min_errors: int, kernel: str):
+    """Levelwise search over the packed item bitsets; see the module docstring."""
+    def count_errors(prefixes, offsets, extensions):
+        return bitset.count_extensions(items.error_bits, prefixes, offsets, extensions, engine=kernel)
+
+    def count_rows(prefixes, offsets, extensions):
+        return bitset.count_extensions(items.bits, prefixes, offsets, extensions, engine=kernel)
+
+    return search_levels(items.n_rows, items.n_errors, items.column_of, max_terms=max_terms,
+                         min_rows=min_rows, min_errors=min_errors, count_errors=count_errors,
+                         count_rows=count_rows,
+                         words_per_count=(items.error_bits.shape[1], items.bits.shape[1]))
 
 
 def _search_mlxtend(items: ItemSet, max_terms: int, min_rows: int, min_errors: int, n_errors: int):

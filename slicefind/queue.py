@@ -168,7 +168,7 @@ class Queue:
         path : str or os.PathLike
         reviews : DataFrame, optional
             Reviews to fill in (columns ``row``, ``reviewed``, ``tags``, ``note``), e.g.
-            ``Workspace.reviews()``; every row must be in the queue.
+            ``Workspace.reviews()``; rows not in the queue are left off, with a warning.
         overwrite : bool, default=False
             Replace a file that already holds filled-in review cells. Without it such a
             file is refused, so typed reviews are never overwritten by accident; an
@@ -506,11 +506,14 @@ def _fill_reviews(sheet: pd.DataFrame, reviews: pd.DataFrame) -> None:
     line_of = {int(r): i for i, r in enumerate(sheet["row"])}
     outside = [int(r) for r in reviews["row"] if int(r) not in line_of]
     if outside:
-        msg = (f"reviews holds {len(outside)} rows that are not in the queue (first: "
-               f"{outside[:5]}); extend the queue or leave those reviews out.")
-        raise SlicefindValueError(msg)
+        import warnings
+        msg = (f"reviews holds {len(outside)} rows that are not in the queue (first: {outside[:5]}); "
+               "they are not written on the sheet (a workspace keeps them in its history).")
+        warnings.warn(msg, stacklevel=3)
     notes = reviews["note"] if "note" in reviews.columns else pd.Series([""] * len(reviews))
     for r, done, tags, note in zip(reviews["row"], reviews["reviewed"], reviews["tags"], notes):
+        if int(r) not in line_of:
+            continue
         i = line_of[int(r)]
         sheet.iat[i, sheet.columns.get_loc("reviewed")] = "1" if bool(done) else ""
         sheet.iat[i, sheet.columns.get_loc("tags")] = "" if pd.isna(tags) else str(tags)

@@ -254,7 +254,7 @@ def test_to_csv_refuses_a_file_that_is_not_a_sheet(tmp_path):
 
 
 def test_to_csv_fills_in_given_reviews(tmp_path):
-    """reviews= writes earlier reviews onto the sheet; rows outside the queue are refused."""
+    """reviews= writes earlier reviews onto the sheet; rows outside the queue are left off, warned."""
     queue = build_queue(strata_found([20, 10], 15), budget=10)
     path = tmp_path / "queue.csv"
     rows = queue.table["row"].tolist()
@@ -266,9 +266,11 @@ def test_to_csv_fills_in_given_reviews(tmp_path):
     assert ["faded ink", ""] == back.loc[rows[:2], "tags"].tolist()
     assert ["", "clean"] == back.loc[rows[:2], "note"].tolist()
     assert 2 == int(back["explicit"].sum())
-    outside = pd.DataFrame({"row": [44], "reviewed": [True], "tags": [""]})
-    with pytest.raises(SlicefindValueError, match=r"not in the queue \(first: \[44\]\)"):
+    unqueued = next(r for r in range(45) if r not in set(rows))
+    outside = pd.DataFrame({"row": [unqueued, rows[0]], "reviewed": [True, True], "tags": ["", "ink smear"]})
+    with pytest.warns(UserWarning, match=rf"1 rows that are not in the queue \(first: \[{unqueued}\]\); they are not written"):
         queue.to_csv(tmp_path / "other.csv", reviews=outside)
+    assert ["ink smear"] == read_reviews(tmp_path / "other.csv", queue).query("explicit")["tags"].tolist()
 
 
 # --- bad input -------------------------------------------------------------------------------

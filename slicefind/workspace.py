@@ -10,8 +10,10 @@ written at once and a killed process loses nothing already committed.
 """
 from __future__ import annotations
 
+import dataclasses
 import datetime as _dt
 import hashlib
+import importlib
 import io
 import json
 import os
@@ -105,6 +107,13 @@ CREATE TABLE names (
     created_at TEXT NOT NULL
 );
 CREATE INDEX names_by_slice ON names (scan_id, slice_id, event_id);
+CREATE TABLE artifacts (
+    scan_id INTEGER NOT NULL REFERENCES scans(scan_id),
+    name TEXT NOT NULL,
+    created_at TEXT NOT NULL,
+    data BLOB NOT NULL,
+    PRIMARY KEY (scan_id, name)
+);
 CREATE TRIGGER reviews_no_update BEFORE UPDATE ON reviews
     BEGIN SELECT RAISE(ABORT, 'reviews are append-only'); END;
 CREATE TRIGGER reviews_no_delete BEFORE DELETE ON reviews
@@ -250,6 +259,90 @@ def _unpack_frame(blob: bytes) -> pd.DataFrame:
     return pd.DataFrame(data, columns=meta["columns"])
 
 
+def _encode_tree(value, arrays: dict):
+    """A JSON tree for `value`; arrays and frames go to `arrays` (no pickle anywhere).
+
+    Handles None, bool, int, float, str, numpy scalars and arrays, DataFrames, Series,
+    lists, tuples, dicts and dataclasses defined in slicefind itself.
+    """
+    if value is None or isinstance(value, (bool, str)):
+        return value
+    if isinstance(value, (int, float)):
+        return value
+    if isinstance(value, np.generic):
+        return value.item()
+    if isinstance(value, np.ndarray):
+        if value.dtype.kind in "biufcmM":
+            key = f"a{len(arrays)}"
+            arrays[key] = value
+            return {"__array__": key}
+        return {"__objects__": [_encode_tree(v, arrays) for v in value.tolist()]}
+    if isinstance(value, pd.Series):
+        return {"__series__": _encode_tree(value.to_frame(name="values"), arrays),
+                "name": _encode_tree(value.name, arrays)}
+    if isinstance(value, pd.DataFrame):
+        key = f"a{len(arrays)}"
+        arrays[key] = np.frombuffer(_pack_frame(value), dtype=np.uint8)
+        return {"__frame__": key, "index": _encode_tree(value.index.to_numpy(), arrays),
+                "index_name": _encode_tree(value.index.name, arrays)}
+    if isinstance(value, tuple):
+        return {"__tuple__": [_encode_tree(v, arrays) for v in value]}
+    if isinstance(value, list):
+        return [_encode_tree(v, arrays) for v in value]
+    if isinstance(value, Mapping):
+        return {"__dict__": [[_encode_tree(k, arrays), _encode_tree(v, arrays)] for k, v in value.items()]}
+    if dataclasses.is_dataclass(value) and not isinstance(value, type):
+        cls = type(value)
+        if not cls.__module__.startswith("slicefind."):
+            raise SlicefindTypeError(f"artifacts hold slicefind's own dataclasses only; got {cls.__qualname__}.")
+        fields = {f.name: _encode_tree(getattr(value, f.name), arrays)
+                  for f in dataclasses.fields(value) if f.init}
+        return {"__dataclass__": f"{cls.__module__}:{cls.__qualname__}", "fields": fields}
+    msg = (f"an artifact cannot hold a {type(value).__name__}; use numbers, strings, lists, dicts, "
+           "numpy arrays or DataFrames.")
+    raise SlicefindTypeError(msg)
+
+
+def _decode_tree(tree, arrays: Mapping[str, np.ndarray]):
+    """Inverse of `_encode_tree`."""
+    if isinstance(tree, list):
+        return [_decode_tree(v, arrays) for v in tree]
+    if not isinstance(tree, dict):
+        return tree
+    if "__array__" in tree:
+        return arrays[tree["__array__"]]
+    if "__objects__" in tree:
+        out = np.empty(len(tree["__objects__"]), dtype=object)
+        out[:] = [_decode_tree(v, arrays) for v in tree["__objects__"]]
+        return out
+    if "__series__" in tree:
+        series = _decode_tree(tree["__series__"], arrays)["values"]
+        series.name = _decode_tree(tree["name"], arrays)
+        return series
+    if "__frame__" in tree:
+        frame = _unpack_frame(arrays[tree["__frame__"]].tobytes())
+        frame.index = pd.Index(_decode_tree(tree["index"], arrays), name=_decode_tree(tree["index_name"], arrays))
+        return frame
+    if "__tuple__" in tree:
+        return tuple(_decode_tree(v, arrays) for v in tree["__tuple__"])
+    if "__dict__" in tree:
+        return {_hashable(_decode_tree(k, arrays)): _decode_tree(v, arrays) for k, v in tree["__dict__"]}
+    if "__dataclass__" in tree:
+        module, _, name = tree["__dataclass__"].partition(":")
+        if not module.startswith("slicefind."):
+            raise SlicefindValueError(f"artifact names a class outside slicefind ({module}); refused.")
+        cls = importlib.import_module(module)
+        for part in name.split("."):
+            cls = getattr(cls, part)
+        return cls(**{k: _decode_tree(v, arrays) for k, v in tree["fields"].items()})
+    return tree
+
+
+def _hashable(key):
+    """Dict keys come back as stored; lists (from tuples' JSON) become tuples."""
+    return tuple(key) if isinstance(key, list) else key
+
+
 def _rows_blob(rows: np.ndarray) -> bytes:
     """A sorted int64 row array as raw bytes."""
     return np.asarray(rows, dtype="<i8").tobytes()
@@ -277,6 +370,9 @@ class Workspace:
         The workspace folder.
     timeout : float, default=30.0
         Seconds a write waits for another process's write to finish.
+    create : bool, default=True
+        Create the folder and database when missing; with False a missing workspace is
+        an error (for commands that need an existing one).
 
     Examples
     --------
@@ -295,7 +391,7 @@ class Workspace:
     >>> ws.close()
     """
 
-    def __init__(self, path, *, timeout: float = 30.0):
+    def __init__(self, path, *, timeout: float = 30.0, create: bool = True):
         if not isinstance(path, (str, os.PathLike)):
             raise SlicefindTypeError(f"path must be a folder path; got {type(path).__name__}.")
         self.path = os.fspath(path)
@@ -303,8 +399,12 @@ class Workspace:
             msg = (f"path={self.path!r} is a file; a workspace is a folder that holds {DB_NAME}. "
                    "Pass the folder (or a new folder name).")
             raise SlicefindValueError(msg)
-        os.makedirs(self.path, exist_ok=True)
         self.db_path = os.path.join(self.path, DB_NAME)
+        if not create and not os.path.exists(self.db_path):
+            msg = (f"{self.path!r} is not a slicefind workspace (it has no {DB_NAME}); create one "
+                   "with a scan first (slicefind scan DATA --out FOLDER, or Workspace(path).save_scan).")
+            raise SlicefindValueError(msg)
+        os.makedirs(self.path, exist_ok=True)
         self._lock = threading.RLock()
         fresh = not os.path.exists(self.db_path) or os.path.getsize(self.db_path) == 0
         self._conn = sqlite3.connect(self.db_path, timeout=timeout, isolation_level=None,
@@ -542,6 +642,45 @@ class Workspace:
                            params=json.loads(params), _rows=rows,
                            extras={"scan_id": scan_id, "fingerprint": fp, "library_version": version,
                                    "created_at": created})
+
+    def stored_columns(self, scan_id: int | None = None) -> tuple[str, ...]:
+        """The pointer columns (image path, text) stored with a scan, for ``build_queue(show=)``."""
+        scan_id = self._scan_id(scan_id)
+        with self._lock:
+            show = self._conn.execute("SELECT show FROM scans WHERE scan_id = ?", (scan_id,)).fetchone()[0]
+        return tuple(json.loads(show))
+
+    def save_artifact(self, name: str, value, *, scan_id: int | None = None) -> None:
+        """Keep something derived from a scan (a 2-d map, descriptions, report settings).
+
+        ``value`` may hold numbers, strings, lists, tuples, dicts, numpy arrays, DataFrames
+        and slicefind's own dataclasses; it is stored without pickle. Saving under the same
+        name replaces the earlier value (artifacts are derived, unlike reviews).
+        """
+        scan_id = self._scan_id(scan_id)
+        if not isinstance(name, str) or not name:
+            raise SlicefindValueError(f"artifact name must be a non-empty string; got {name!r}.")
+        arrays: dict[str, np.ndarray] = {}
+        tree = _encode_tree(value, arrays)
+        arrays["__tree__"] = np.frombuffer(json.dumps(tree).encode("utf-8"), dtype=np.uint8)
+        buffer = io.BytesIO()
+        np.savez_compressed(buffer, **arrays)
+        with self._transaction() as conn:
+            conn.execute("INSERT OR REPLACE INTO artifacts (scan_id, name, created_at, data) "
+                         "VALUES (?, ?, ?, ?)", (scan_id, name, _now(), buffer.getvalue()))
+
+    def load_artifact(self, name: str, *, default=None, scan_id: int | None = None):
+        """An artifact saved with `save_artifact`, or `default` when there is none."""
+        scan_id = self._scan_id(scan_id)
+        with self._lock:
+            row = self._conn.execute("SELECT data FROM artifacts WHERE scan_id = ? AND name = ?",
+                                     (scan_id, name)).fetchone()
+        if row is None:
+            return default
+        with np.load(io.BytesIO(row[0]), allow_pickle=False) as npz:
+            arrays = {key: npz[key] for key in npz.files}
+        tree = json.loads(arrays.pop("__tree__").tobytes().decode("utf-8"))
+        return _decode_tree(tree, arrays)
 
     # -- queues ----------------------------------------------------------------------------
 

@@ -428,3 +428,50 @@ def test_killed_import_loses_nothing_already_committed(tmp_path):
         expected = sheet.set_index("row")["tags"]
         assert expected.to_dict() == state.loc[expected.index, "tags"].to_dict()
         assert 0 == ws.import_sheet(path)["recorded"]
+
+
+# --- what the command line keeps besides reviews ---------------------------------------------
+
+def test_create_false_refuses_a_missing_workspace(tmp_path):
+    """create=False does not make a folder; it says how to start one."""
+    with pytest.raises(SlicefindValueError, match=r"is not a slicefind workspace \(it has no slicefind.sqlite\)"):
+        Workspace(tmp_path / "nothing", create=False)
+    assert not (tmp_path / "nothing").exists()
+
+
+def test_stored_columns_are_the_pointer_columns(ws):
+    """stored_columns() gives the show= columns saved with the scan."""
+    assert ("label_image",) == ws.stored_columns()
+
+
+def test_artifacts_round_trip_without_pickle(ws):
+    """Arrays, frames, nested containers and slicefind dataclasses come back equal; a name
+    saved again replaces its value; unknown names give the default."""
+    from dataclasses import dataclass
+
+    from slicefind.items import Item
+    from slicefind.slices import Slice
+
+    frame = pd.DataFrame({"label": [3, 8], "prediction": [8, 3], "n_errors": [12, 5]},
+                         index=pd.Index(["a", "b"], name="pair"))
+    value = {"map_xy": np.arange(6, dtype=np.float32).reshape(3, 2), "confusions": frame,
+             "notes": ("belt 3 jams", None, 2.5), "R1": Item("scanner", "=", "S3", "scanner = S3"),
+             "slice": Slice("rule", "shift = night", np.array([1, 4, 9]), n_terms=1, key="k")}
+    ws.save_artifact("report", value)
+    back = ws.load_artifact("report")
+    assert value["map_xy"].tolist() == back["map_xy"].tolist() and np.float32 == back["map_xy"].dtype
+    pd.testing.assert_frame_equal(frame, back["confusions"])
+    assert value["notes"] == back["notes"] and value["R1"] == back["R1"]
+    assert [1, 4, 9] == back["slice"].rows.tolist() and "shift = night" == back["slice"].description
+    ws.save_artifact("report", {"notes": []})
+    assert {"notes": []} == ws.load_artifact("report")
+    assert "none" == ws.load_artifact("missing", default="none")
+
+    @dataclass
+    class Foreign:
+        x: int
+
+    with pytest.raises(SlicefindTypeError, match="artifacts hold slicefind's own dataclasses only"):
+        ws.save_artifact("bad", Foreign(1))
+    with pytest.raises(SlicefindTypeError, match="an artifact cannot hold a set"):
+        ws.save_artifact("bad", {1, 2})

@@ -878,7 +878,9 @@ class Workspace:
         reviews = read_reviews(sheet, queue)
         if source is None:
             source = f"sheet:{os.fspath(sheet)}" if isinstance(sheet, (str, os.PathLike)) else "sheet"
-        latest = self._latest_reviews(scan_id).set_index("row")
+        latest = self._latest_reviews(scan_id)
+        before_of = {int(r): (int(d), t, n) for r, d, t, n in
+                     zip(latest["row"], latest["reviewed"], latest["tags"], latest["note"])}
         pending = []
         blank = unchanged = 0
         for row, done, tags, note, explicit in zip(reviews["row"], reviews["reviewed"], reviews["tags"],
@@ -887,12 +889,7 @@ class Workspace:
                 blank += 1
                 continue
             state = (int(bool(done)), tags, note)
-            if row in latest.index:
-                old = latest.loc[row]
-                before = (int(old["reviewed"]), old["tags"], old["note"])
-            else:
-                before = (0, "", "")
-            if before == state:
+            if before_of.get(int(row), (0, "", "")) == state:
                 unchanged += 1
                 continue
             pending.append((scan_id, int(row), *state, source))

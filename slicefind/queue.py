@@ -13,6 +13,7 @@ import csv
 import heapq
 import os
 import tempfile
+import warnings
 from dataclasses import dataclass, field
 from typing import Any, Mapping, Sequence
 
@@ -143,9 +144,9 @@ class Queue:
             add[REST] = add_rest
         added = sum(add.values())
         if added < n:
-            import warnings
             msg = (f"only {added} more error rows remain unqueued, so the queue grows by {added}, "
-                   f"not {n}; every stratum is now queued in full.")
+                   f"not {n}; every stratum is now queued in full (ask for at most {added} to "
+                   "avoid this warning).")
             warnings.warn(msg, stacklevel=2)
         if added == 0:
             return self
@@ -506,9 +507,9 @@ def _fill_reviews(sheet: pd.DataFrame, reviews: pd.DataFrame) -> None:
     line_of = {int(r): i for i, r in enumerate(sheet["row"])}
     outside = [int(r) for r in reviews["row"] if int(r) not in line_of]
     if outside:
-        import warnings
         msg = (f"reviews holds {len(outside)} rows that are not in the queue (first: {outside[:5]}); "
-               "they are not written on the sheet (a workspace keeps them in its history).")
+               "they are not written on the sheet (a workspace keeps them in its history; pass only "
+               "the queue's rows to avoid this warning).")
         warnings.warn(msg, stacklevel=3)
     notes = reviews["note"] if "note" in reviews.columns else pd.Series([""] * len(reviews))
     for r, done, tags, note in zip(reviews["row"], reviews["reviewed"], reviews["tags"], notes):

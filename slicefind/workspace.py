@@ -20,6 +20,7 @@ import os
 import shutil
 import sqlite3
 import threading
+import warnings
 from typing import Any, Callable, Iterable, Mapping, Sequence
 
 import numpy as np
@@ -975,9 +976,9 @@ class Workspace:
         state = self.reviews(scan_id)
         inside = state["row"].isin(queue.table["row"])
         if not inside.all():
-            import warnings
             msg = (f"{int((~inside).sum())} reviewed rows of scan {scan_id} are not in its current "
-                   "queue (it was replaced) and are left out of the tally; they stay in history().")
+                   "queue (it was replaced) and are left out of the tally; they stay in history(). "
+                   "Extend the queue instead of replacing it to keep them in.")
             warnings.warn(msg, stacklevel=2)
         state = state[inside]
         return tally(queue, state[["row", "reviewed", "tags", "note"]], names=merged,

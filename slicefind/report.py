@@ -54,6 +54,7 @@ class ReportInputs:
     simulated_review: bool = False
     title: str = "slicefind report"
     notes: Sequence[str] = ()
+    compare: Any = None                               # a compare.Comparison
 
 
 def _png(fig) -> str:
@@ -362,6 +363,8 @@ def render_report(found, inputs: ReportInputs | None = None) -> str:
                          "<th>more to review</th></tr></thead><tbody>" + "".join(rows_html) +
                          "</tbody></table>")
 
+    if inputs.compare is not None:
+        parts.append(_compare_section(inputs.compare))
     if table.skipped:
         parts.append("<h2 id='skipped'>Columns not mined</h2><ul class='small'>" +
                      "".join(f"<li><b>{html.escape(str(c))}</b>: {html.escape(str(r))}</li>"
@@ -389,3 +392,112 @@ def write_report(path, found, inputs: ReportInputs | None = None) -> str:
         raise
     return path
 
+
+def _compare_section(comparison) -> str:
+    """The before/after section: summary, figure, table with regressions highlighted, new slices."""
+    def figure(lines: pd.DataFrame) -> str:
+        """Error rate before (slate) and after (teal) with Wilson intervals, one row per line;
+        regressions labelled in vermilion, improvements in teal."""
+        plt = _pyplot()
+        n = len(lines)
+        fig, ax = plt.subplots(figsize=(7.5, 0.42 * n + 1.5))
+        y = np.arange(n)[::-1].astype(float)
+        for column, shift, colour, marker, label in (("error_rate_before", 0.14, PALETTE[0], "o", "before"),
+                                                     ("error_rate_after", -0.14, PALETTE[3], "s", "after")):
+            rate = lines[column].to_numpy(dtype=float)
+            low = lines[column + "_low"].to_numpy(dtype=float)
+            high = lines[column + "_high"].to_numpy(dtype=float)
+            ax.errorbar(rate, y + shift, xerr=[np.maximum(rate - low, 0), np.maximum(high - rate, 0)],
+                        fmt=marker, ms=4.5, color=colour, ecolor=colour, capsize=3, lw=1.2, label=label)
+        labels = []
+        for _, line in lines.iterrows():
+            if line["kind"] == "category":
+                text = f"category: {line['category']}"
+            elif line["kind"] == "overall":
+                text = "overall"
+            else:
+                text = str(line["slice_id"]) + (f" ({line['category']})" if line["category"] else "")
+            labels.append(text[:40])
+        ax.set_yticks(y, labels=labels)
+        for tick, (_, line) in zip(ax.get_yticklabels(), lines.iterrows()):
+            if line["regression"]:
+                tick.set_color(PALETTE[1])
+                tick.set_fontweight("bold")
+            elif line["improved"]:
+                tick.set_color(PALETTE[3])
+        top = float(np.nanmax(lines[["error_rate_before_high", "error_rate_after_high"]].to_numpy(dtype=float)))
+        ax.set_xlim(-0.01, min(1.0, top * 1.08 + 0.02))
+        ax.xaxis.set_major_formatter(plt.FuncFormatter(lambda v, _: f"{v:.0%}"))
+        ax.grid(axis="x", color="#e4e7eb", lw=0.8)
+        ax.set_xlabel(f"error rate with {level:.0%} Wilson interval (labels: vermilion = regression, "
+                      "teal = improved)")
+        ax.set_title("Before and after, on the same rows")
+        ax.legend(loc="lower right", fontsize=8, frameon=True)
+        return _png(fig)
+
+    shown_max = 30                       # lines drawn and listed (all are in compare.csv)
+    table = comparison.table
+    o = comparison.overall
+    fdr = comparison.params.get("fdr", 0.05)
+    level = comparison.params.get("confidence_level", 0.95)
+    n_better = int(table["improved"].iloc[1:].sum())
+    n_worse = int(table["regression"].iloc[1:].sum())
+    verdict = ("better" if o["improved"] else "worse" if o["regression"] else "not detectably different")
+    parts = ["<h2 id='compare'>Before and after</h2>"]
+    parts.append(
+        f"<p id='compare-summary'>On the same {int(o['n_rows']):,} rows the error rate went from "
+        f"<b>{o['error_rate_before']:.2%}</b> to <b>{o['error_rate_after']:.2%}</b> "
+        f"({100 * o['change']:+.2f} points: {int(o['n_fixed']):,} rows fixed, {int(o['n_broken']):,} "
+        f"broken; McNemar's exact test p = {o['p_value']:.2g}, overall {verdict}). "
+        f"{n_better} slice or category line{'s' if n_better != 1 else ''} improved and "
+        f"<b>{n_worse}</b> regressed at false discovery rate {fdr} (Benjamini–Hochberg over the "
+        f"slices and categories). After: {html.escape(str(comparison.params.get('after', '')))}.</p>")
+    if n_worse:
+        names = ", ".join(html.escape(str(r["slice_id"] or r["category"])) for _, r in
+                          table.iloc[1:][table["regression"].iloc[1:]].iterrows())
+        parts.append(f"<p class='caution' id='compare-regressions'><b>Regressions</b> (significantly "
+                     f"worse after, whatever the total did): {names}.</p>")
+    shown = table.head(shown_max + 1)
+    parts.append(f"<img class='figure' id='compare-figure' alt='before and after error rates' "
+                 f"src='{figure(shown)}'>")
+    rows_html = []
+    for _, r in shown.iterrows():
+        style = (" style='background:#fde8ea'" if r["regression"] else
+                 " style='background:#e6f4f1'" if r["improved"] else "")
+        flag = ("<b style='color:#d1495b'>regression</b>" if r["regression"] else
+                "<span style='color:#00798c'>improved</span>" if r["improved"] else "")
+        name = (f"category: {r['category']}" if r["kind"] == "category" else
+                f"{r['slice_id']}" + (f" ({r['category']})" if r["category"] else ""))
+        cells = (f"<td><b>{html.escape(name)}</b></td><td>{html.escape(str(r['description']))}</td>"
+                 f"<td class='int'>{int(r['n_rows']):,}</td>"
+                 f"<td class='pct'>{r['error_rate_before']:.1%}<br><span class='small'>"
+                 f"{r['error_rate_before_low']:.1%}–{r['error_rate_before_high']:.1%}</span></td>"
+                 f"<td class='pct'>{r['error_rate_after']:.1%}<br><span class='small'>"
+                 f"{r['error_rate_after_low']:.1%}–{r['error_rate_after_high']:.1%}</span></td>"
+                 f"<td class='f1'>{100 * r['change']:+.1f}</td><td class='int'>{int(r['n_fixed']):,}</td>"
+                 f"<td class='int'>{int(r['n_broken']):,}</td><td class='p'>{r['p_value']:.2g}</td>"
+                 f"<td class='p'>{r['q_value']:.2g}</td><td>{flag}</td>")
+        klass = "regression" if r["regression"] else "improved" if r["improved"] else ""
+        rows_html.append(f"<tr class='{klass}'{style}>{cells}</tr>")
+    parts.append("<table id='compare-table'><thead><tr><th>line</th><th>description</th><th>rows</th>"
+                 f"<th>before ({level:.0%})</th><th>after ({level:.0%})</th><th>change (points)</th>"
+                 "<th>fixed</th><th>broken</th><th>p</th><th>q</th><th></th></tr></thead><tbody>"
+                 + "".join(rows_html) + "</tbody></table>")
+    if len(table) > len(shown):
+        parts.append(f"<p class='small'>{len(table) - len(shown)} more lines in compare.csv.</p>")
+    new = comparison.new_slices
+    if len(new):
+        parts.append("<h3 id='compare-new'>New trouble in the errors after</h3><p class='small'>Slices "
+                     "of the after model's errors: <i>new</i> when no earlier slice overlaps them "
+                     "(Jaccard &ge; 0.5), <i>worse</i> when they overlap one and got significantly "
+                     "worse.</p>")
+        parts.append(_table(new, [("slice_id", "id", "text"), ("status", "status", "text"),
+                                  ("description", "description", "text"), ("n_rows", "rows", "int"),
+                                  ("error_rate_before", "before", "pct"),
+                                  ("error_rate_after", "after", "pct"), ("q_value", "q", "p"),
+                                  ("closest_slice", "closest earlier slice", "text"),
+                                  ("jaccard", "Jaccard", "f2")], "compare-new"))
+    else:
+        parts.append(f"<p class='small'>After scan: {html.escape(str(comparison.params.get('rescan', '')))}"
+                     "; no new or significantly worse slice listed.</p>")
+    return "".join(parts)

@@ -1,0 +1,722 @@
+"""Embedding clusters: regions and error modes (PCA, UMAP, HDBSCAN), as slices.
+
+The reduction runs in four steps, each chosen so that a seeded run is reproducible and
+does not pay numba's compile cost on every call:
+
+1. optional L2 normalisation (``metric="cosine"``), then PCA to at most `PCA_DIMS` dims;
+2. an *exact* k-nearest-neighbour graph (scikit-learn, brute force) and UMAP's fuzzy
+   graph computed from it here in numpy (UMAP, McInnes et al. 2018, section 3) -- no
+   approximate neighbour search and no per-process compile of it;
+3. UMAP's layout optimisation (umap-learn's ``simplicial_set_embedding``, spectral
+   start) to `CLUSTER_DIMS` dims for clustering and to 2 dims for the map; with an
+   integer ``random_state`` the layout runs single-threaded and is reproducible, and
+   its compiled code is kept in numba's disk cache between processes;
+4. HDBSCAN (the ``hdbscan`` package) over all rows (*regions*) and over error rows only
+   (*error modes*, then extended to the nearby rows by nearest neighbours with a
+   distance cut-off).
+
+Exact duplicate embedding rows are collapsed first and every result is mapped back to
+each copy. Above ``sample_above`` distinct rows the reduction and clustering are fitted
+on a sample (every error up to a cap, plus random correct rows) and the other rows are
+assigned by nearest neighbours in the PCA space.
+"""
+from __future__ import annotations
+
+import importlib.util
+import inspect
+import os
+import time
+import warnings
+from dataclasses import dataclass, field
+from typing import Any, Mapping
+
+import numpy as np
+
+from slicefind.slices import Slice
+from slicefind.table import EvalTable, SlicefindTypeError, SlicefindValueError
+
+__all__ = [
+    "ClusterResult",
+    "DisconnectedGraphWarning",
+    "cluster_slices",
+    "noise_as_singletons",
+    "NOISE",
+    "STRATEGIES",
+    "METRICS",
+    "INITS",
+]
+
+#: label of rows HDBSCAN leaves out of every cluster
+NOISE = -1
+STRATEGIES = ("both", "regions", "error_modes")
+METRICS = ("cosine", "euclidean")
+#: PCA keeps at most this many dimensions before the neighbour graph
+PCA_DIMS = 50
+#: dimensions of the UMAP layout that HDBSCAN clusters
+CLUSTER_DIMS = 8
+#: rows per block when a step runs over all rows (PCA transform, assignment)
+_BLOCK = 20_000
+#: warn when graph pieces smaller than a region hold at least this share of the fitted rows
+FRAGMENT_WARN_SHARE = 0.01
+#: smallest distinct-row count worth clustering
+MIN_ROWS_TO_CLUSTER = 50
+
+
+class DisconnectedGraphWarning(UserWarning):
+    """The nearest-neighbour graph of the embeddings falls apart into many small pieces.
+
+    A few large pieces (well-separated clusters) are recorded in the diagnostics
+    (``n_graph_components``) without a warning; pieces too small to be a region, holding
+    at least `FRAGMENT_WARN_SHARE` of the rows, are what near-copies of few originals
+    produce, and they are warned about."""
+
+
+@dataclass(frozen=True, repr=False)
+class ClusterResult:
+    """Regions and error modes found in the embeddings, with the 2-D map.
+
+    Attributes
+    ----------
+    slices : tuple of Slice
+        One per cluster (``source`` "region" or "error_mode"), rows among the analysed rows.
+    labels : dict
+        Strategy ("region", "error_mode") -> int label per analysed row; `NOISE` (-1)
+        for rows in no cluster.
+    map_xy : (n_rows, 2) float32 array or None
+        UMAP map of every analysed row, for figures.
+    coords : (n_rows, CLUSTER_DIMS) float32 array
+        The reduced space the clusters were found in (medoids and exemplars use it).
+    diagnostics : dict
+        ``n_rows, n_distinct, n_fit, sampled, n_graph_components, connected,
+        largest_component_share, fragment_share, noise_share`` (per strategy), ``n_clusters`` (per
+        strategy), ``min_cluster_size`` (per strategy), ``seeded`` and ``timings`` (seconds
+        per step).
+    params : dict
+        The options used.
+    """
+
+    slices: tuple[Slice, ...]
+    labels: Mapping[str, np.ndarray]
+    map_xy: np.ndarray | None
+    coords: np.ndarray | None
+    diagnostics: Mapping[str, Any] = field(default_factory=dict)
+    params: Mapping[str, Any] = field(default_factory=dict)
+
+    def __repr__(self):
+        counts = ", ".join(f"{k}={int(v.max(initial=NOISE)) + 1}" for k, v in self.labels.items())
+        return f"ClusterResult(n_slices={len(self.slices)}, {counts})"
+
+
+def _require(module: str, *, package: str, needed_for: str) -> None:
+    """Fail early, with the install command, when an optional package is missing."""
+    if importlib.util.find_spec(module) is None:
+        msg = f"{needed_for} needs {package}: pip install {package}"
+        raise ImportError(msg)
+
+
+def _stacklevel() -> int:
+    """`warnings.warn` stack level, from the function calling this one, of the first frame
+    outside slicefind, so that a warning points at the user's call."""
+    here = os.path.dirname(os.path.abspath(__file__))
+    level = 1
+    for frame in inspect.stack()[2:]:
+        level += 1
+        if not os.path.abspath(frame.filename).startswith(here + os.sep):
+            break
+    return level
+
+
+def noise_as_singletons(labels) -> np.ndarray:
+    """Labels with every `NOISE` row put in a cluster of its own (for agreement scores).
+
+    slicefind's noise convention: a row HDBSCAN calls noise agrees with no other row, so
+    scores such as the adjusted Rand index neither reward nor punish two noise rows for
+    sharing the noise label.
+
+    Examples
+    --------
+    >>> noise_as_singletons([0, 0, -1, 1, -1]).tolist()
+    [0, 0, 2, 1, 3]
+    """
+    out = np.asarray(labels, dtype=np.int64).copy()
+    noise = out == NOISE
+    start = int(out.max(initial=NOISE)) + 1
+    out[noise] = start + np.arange(int(noise.sum()))
+    return out
+
+
+# ---------------------------------------------------------------- reduction steps
+
+def _distinct(x: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """(first row of each distinct vector, inverse) of the rows of `x`, by a 64-bit row hash
+    checked against the representative (exact; falls back to np.unique on a collision)."""
+    import pandas as pd
+
+    n, d = x.shape
+    mult = (np.random.default_rng(12345).integers(1, 2**62, d, dtype=np.uint64) | np.uint64(1))
+    hashes = np.empty(n, dtype=np.uint64)
+    unsigned = np.dtype(f"u{x.dtype.itemsize}")
+    with np.errstate(over="ignore"):
+        for lo in range(0, n, _BLOCK):
+            words = np.ascontiguousarray(x[lo:lo + _BLOCK]).view(unsigned).astype(np.uint64)
+            hashes[lo:lo + _BLOCK] = (words * mult).sum(axis=1, dtype=np.uint64)
+    codes, _ = pd.factorize(hashes, sort=False)
+    first = np.full(int(codes.max()) + 1, n, dtype=np.int64)
+    np.minimum.at(first, codes, np.arange(n))
+    same = np.ones(n, dtype=bool)
+    for lo in range(0, n, _BLOCK):
+        sl = slice(lo, lo + _BLOCK)
+        same[sl] = np.all(x[sl] == x[first[codes[sl]]], axis=1)
+    if not same.all():                                   # a hash collision: do it exactly
+        _, first, inverse = np.unique(x, axis=0, return_index=True, return_inverse=True)
+        order = np.argsort(first, kind="stable")
+        rank = np.empty_like(order)
+        rank[order] = np.arange(order.size)
+        return first[order], rank[inverse.ravel()]
+    return first.astype(np.intp), codes.astype(np.intp)
+
+
+def _normalise(x: np.ndarray) -> np.ndarray:
+    """Rows scaled to unit L2 norm (zero rows stay zero)."""
+    norms = np.linalg.norm(x, axis=1, keepdims=True)
+    return x / np.where(norms > 0, norms, 1.0)
+
+
+def _pca(x: np.ndarray, rows: np.ndarray, fit: np.ndarray, n_dims: int, metric: str) -> np.ndarray:
+    """float32 (len(rows), <= n_dims) projection of ``x[rows]`` on the top principal axes
+    of ``x[rows[fit]]``, applied blockwise (no full copy of `x`). The axes come from the eigen-decomposition of the covariance
+    matrix (deterministic: no random start; each axis's sign fixed so that its largest
+    loading is positive). Data with at most n_dims columns is only rotated, so the
+    leading columns are always the leading principal coordinates."""
+    n = rows.size
+    fit = x[rows[fit]]
+    if metric == "cosine":
+        fit = _normalise(fit)
+    mean = fit.mean(axis=0)
+    centred = fit - mean
+    cov = centred.T @ centred / max(fit.shape[0] - 1, 1)
+    values, vectors = np.linalg.eigh(cov)                 # ascending eigenvalues
+    axes = vectors[:, ::-1][:, :min(n_dims, fit.shape[0])]
+    signs = np.sign(axes[np.argmax(np.abs(axes), axis=0), np.arange(axes.shape[1])])
+    axes = axes * np.where(signs == 0, 1.0, signs)
+    out = np.empty((n, axes.shape[1]), dtype=np.float32)
+    for lo in range(0, n, _BLOCK):
+        block = x[rows[lo:lo + _BLOCK]]
+        if metric == "cosine":
+            block = _normalise(block)
+        out[lo:lo + _BLOCK] = (block - mean) @ axes
+    return out
+
+
+def _knn(z: np.ndarray, n_neighbors: int) -> tuple[np.ndarray, np.ndarray]:
+    """Exact k nearest neighbours of every row of `z` among the others, with the row itself
+    first (distance 0), as UMAP expects: (indices, distances), each (n, n_neighbors)."""
+    from sklearn.neighbors import NearestNeighbors
+
+    k = min(n_neighbors, z.shape[0]) - 1
+    dist, idx = NearestNeighbors(n_neighbors=k, algorithm="brute").fit(z).kneighbors()
+    n = z.shape[0]
+    idx = np.hstack([np.arange(n)[:, None], idx]).astype(np.int64)
+    dist = np.hstack([np.zeros((n, 1)), dist]).astype(np.float32)
+    return idx, dist
+
+
+def _fuzzy_graph(idx: np.ndarray, dist: np.ndarray):
+    """UMAP's fuzzy simplicial set (McInnes, Healy & Melville 2018, section 3.1) from an
+    exact kNN graph: per-row rho (nearest non-zero distance) and sigma (binary search so
+    that sum_j exp(-(d_ij - rho_i)/sigma_i) = log2(k)), then the fuzzy union
+    ``W + W.T - W * W.T``. Returns a symmetric scipy COO matrix."""
+    import scipy.sparse
+
+    n, k = dist.shape
+    d = dist.astype(np.float64)
+    target = np.log2(k)
+    positive = np.where(d > 0, d, np.inf)
+    rho = positive.min(axis=1)
+    rho[~np.isfinite(rho)] = 0.0
+    gap = np.maximum(d[:, 1:] - rho[:, None], 0.0)
+    lo = np.zeros(n)
+    hi = np.full(n, np.inf)
+    mid = np.ones(n)
+    for _ in range(64):                         # umap-learn uses 64 bisection steps as well
+        psum = np.exp(-gap / mid[:, None]).sum(axis=1)
+        high = psum > target
+        hi = np.where(high, mid, hi)
+        lo = np.where(high, lo, mid)
+        mid = np.where(np.isinf(hi), mid * 2.0, (lo + hi) / 2.0)
+    sigma = mid
+    # the same floor as umap-learn (MIN_K_DIST_SCALE = 1e-3 of the mean distance)
+    floor = 1e-3 * np.where(rho > 0, d.mean(axis=1), d.mean())
+    sigma = np.maximum(sigma, floor)
+    weights = np.exp(-gap / sigma[:, None])
+    rows = np.repeat(np.arange(n), k - 1)
+    cols = idx[:, 1:].ravel()
+    w = scipy.sparse.coo_matrix((weights.ravel().astype(np.float32), (rows, cols)), shape=(n, n)).tocsr()
+    wt = w.T.tocsr()
+    graph = (w + wt - w.multiply(wt)).tocoo()
+    graph.eliminate_zeros()
+    return graph
+
+
+def _components(graph, small: int) -> tuple[int, float, float]:
+    """(number of connected components, share of rows in the largest, share of rows in
+    pieces of fewer than `small` rows) of a graph."""
+    from scipy.sparse.csgraph import connected_components
+
+    n_comp, comp = connected_components(graph, directed=False)
+    sizes = np.bincount(comp)
+    return int(n_comp), float(sizes.max() / comp.size), float(sizes[sizes < small].sum() / comp.size)
+
+
+def _umap_layout(z: np.ndarray, graph, n_dims: int, seed: int | None, *, init: str,
+                 n_epochs: int, progress: bool, what: str) -> np.ndarray:
+    """UMAP layout of `graph` in `n_dims` dims. ``init="pca"`` starts from the leading
+    principal coordinates (the first columns of `z`), ``"spectral"`` from UMAP's spectral
+    embedding. An int seed runs the single-threaded, reproducible optimiser; None the
+    parallel one."""
+    os.environ.setdefault("NUMBA_CACHE_DIR", _cache_dir())
+    import umap.layouts
+    from umap.umap_ import find_ab_params, simplicial_set_embedding
+
+    _cache_umap_kernels(umap.layouts)
+    a, b = find_ab_params(1.0, 0.1)              # umap-learn's defaults: spread=1, min_dist=0.1
+    state = np.random.RandomState(seed)
+    start = "spectral"
+    if init == "pca":
+        start = np.ascontiguousarray(z[:, :n_dims], dtype=np.float32)
+        if start.shape[1] < n_dims:               # fewer data dims than layout dims
+            pad = state.normal(0.0, 1e-4, (z.shape[0], n_dims - start.shape[1])).astype(np.float32)
+            start = np.hstack([start, pad])
+    with warnings.catch_warnings():
+        warnings.filterwarnings("ignore", message=".*n_jobs.*")
+        embedding, _ = simplicial_set_embedding(
+            data=z, graph=graph.copy(), n_components=n_dims, initial_alpha=1.0, a=a, b=b,
+            gamma=1.0, negative_sample_rate=5, n_epochs=n_epochs, init=start,
+            random_state=state, metric="euclidean", metric_kwds={}, densmap=False,
+            densmap_kwds={}, output_dens=False, parallel=seed is None, verbose=False,
+            tqdm_kwds={"disable": not progress, "desc": f"UMAP {what}", "leave": False})
+    return np.asarray(embedding, dtype=np.float32)
+
+
+def _cache_dir() -> str:
+    """numba's cache folder for slicefind (shared with the bitset kernels)."""
+    from slicefind.bitset import _cache_dir as bitset_cache
+
+    return bitset_cache()
+
+
+def _cache_umap_kernels(layouts) -> None:
+    """Ask numba to keep umap-learn's layout kernels in its disk cache (they are compiled
+    in every new process otherwise); a no-op where the dispatcher cannot cache."""
+    for name in ("_nb_optimize_layout_euclidean_single_epoch",
+                 "_nb_optimize_layout_euclidean_single_epoch_parallel"):
+        dispatcher = getattr(layouts, name, None)
+        enable = getattr(dispatcher, "enable_caching", None)
+        if enable is not None and not getattr(dispatcher, "_slicefind_cached", False):
+            try:
+                enable()
+                dispatcher._slicefind_cached = True
+            except Exception:          # numba cannot cache this one: it just compiles
+                pass
+
+
+def _map(zf: np.ndarray, graph, map_size: int, n_neighbors: int, seed, rng, *, init: str,
+         n_epochs: int, progress: bool) -> np.ndarray:
+    """2-D UMAP map of the fitted rows: laid out on at most `map_size` of them (their own
+    neighbour graph), the others placed at the distance-weighted mean of their nearest
+    laid-out rows in the PCA space."""
+    if zf.shape[0] <= map_size:
+        return _umap_layout(zf, graph, 2, seed, init=init, n_epochs=n_epochs, progress=progress,
+                            what="map (2-d)")
+    core = np.sort(rng.choice(zf.shape[0], map_size, replace=False))
+    idx, dist = _knn(zf[core], n_neighbors)
+    core_xy = _umap_layout(zf[core], _fuzzy_graph(idx, dist), 2, seed, init=init,
+                           n_epochs=n_epochs, progress=progress, what="map (2-d)")
+    rest = np.setdiff1d(np.arange(zf.shape[0]), core, assume_unique=True)
+    _, (rest_xy,) = _assign(zf, core, rest, [], [core_xy], n_neighbors, progress=False)
+    out = np.empty((zf.shape[0], 2), dtype=np.float32)
+    out[core], out[rest] = core_xy, rest_xy
+    return out
+
+
+def _hdbscan(points: np.ndarray, min_cluster_size: int, min_samples: int) -> np.ndarray:
+    """HDBSCAN labels (`NOISE` = -1) of `points`."""
+    import hdbscan
+
+    if points.shape[0] < 2 * min_cluster_size:
+        return np.full(points.shape[0], NOISE, dtype=np.int64)
+    model = hdbscan.HDBSCAN(min_cluster_size=int(min_cluster_size), min_samples=int(min_samples),
+                            core_dist_n_jobs=1)
+    labels = model.fit_predict(points.astype(np.float64))
+    return _renumber(labels)
+
+
+def _renumber(labels: np.ndarray) -> np.ndarray:
+    """Clusters renumbered 0, 1, ... by decreasing size (ties by first row); noise kept."""
+    labels = np.asarray(labels, dtype=np.int64)
+    found = np.unique(labels[labels != NOISE])
+    if found.size == 0:
+        return labels.copy()
+    sizes = np.array([np.count_nonzero(labels == c) for c in found])
+    firsts = np.array([np.flatnonzero(labels == c)[0] for c in found])
+    order = np.lexsort((firsts, -sizes))
+    new = np.full(int(found.max()) + 1, NOISE, dtype=np.int64)
+    new[found[order]] = np.arange(found.size)
+    out = np.where(labels == NOISE, NOISE, new[np.maximum(labels, 0)])
+    return out
+
+
+def _extend_modes(coords: np.ndarray, err: np.ndarray, modes: np.ndarray, n_vote: int) -> np.ndarray:
+    """Extend error modes from the error points to every point.
+
+    A point joins mode m when m wins the vote of its `n_vote` nearest error points and
+    its nearest member of m is no farther than m's cut-off: the 90th percentile, over m's
+    members, of the distance to their `n_vote`-th nearest fellow member. Error points keep
+    their own label. Assumes `modes` holds one label per error point."""
+    from sklearn.neighbors import NearestNeighbors
+
+    out = np.full(coords.shape[0], NOISE, dtype=np.int64)
+    err_idx = np.flatnonzero(err)
+    out[err_idx] = modes
+    n_modes = int(modes.max(initial=NOISE)) + 1
+    if n_modes == 0:
+        return out
+    cut = np.zeros(n_modes)
+    for m in range(n_modes):
+        members = coords[err_idx[modes == m]]
+        k = min(n_vote, members.shape[0] - 1)
+        d, _ = NearestNeighbors(n_neighbors=k + 1).fit(members).kneighbors(members)
+        cut[m] = np.quantile(d[:, k], 0.9)
+    others = np.flatnonzero(~err)
+    if others.size == 0:
+        return out
+    k = min(n_vote, err_idx.size)
+    nn = NearestNeighbors(n_neighbors=k).fit(coords[err_idx])
+    for lo in range(0, others.size, _BLOCK):
+        block = others[lo:lo + _BLOCK]
+        d, j = nn.kneighbors(coords[block])
+        lab = modes[j]                                        # (b, k)
+        votes = np.zeros((block.size, n_modes + 1), dtype=np.int32)
+        np.add.at(votes, (np.arange(block.size)[:, None], lab + 1), 1)
+        winner = votes[:, 1:].argmax(axis=1)
+        wins = votes[:, 1:].max(axis=1) * 2 > k               # a strict majority of the votes
+        # distance to the nearest neighbour that belongs to the winner
+        hit = lab == winner[:, None]
+        nearest = np.where(hit, d, np.inf).min(axis=1)
+        ok = wins & (nearest <= cut[winner])
+        out[block[ok]] = winner[ok]
+    return out
+
+
+def _assign(z: np.ndarray, fit: np.ndarray, rest: np.ndarray, label_sets: list[np.ndarray],
+            coord_sets: list[np.ndarray], n_neighbors: int, progress: bool):
+    """Give the `rest` rows the majority label of their `n_neighbors` nearest fit rows (in
+    the PCA space `z`), for each labelling in `label_sets` (fit-row labels), and the
+    distance-weighted mean of their coordinates in each of `coord_sets`."""
+    from sklearn.neighbors import NearestNeighbors
+    from tqdm.auto import tqdm
+
+    k = min(n_neighbors, fit.size)
+    nn = NearestNeighbors(n_neighbors=k, algorithm="brute").fit(z[fit])
+    labels_out = [np.empty(rest.size, dtype=np.int64) for _ in label_sets]
+    coords_out = [np.empty((rest.size, c.shape[1]), dtype=np.float32) for c in coord_sets]
+    blocks = range(0, rest.size, _BLOCK)
+    for lo in tqdm(blocks, desc="assigning rows to clusters", disable=not progress, leave=False):
+        block = rest[lo:lo + _BLOCK]
+        d, j = nn.kneighbors(z[block])
+        w = 1.0 / (d + 1e-6 * (d[:, -1:] + 1e-12))
+        for labels, out in zip(label_sets, labels_out):
+            lab = labels[j] + 1                               # 0 = noise
+            votes = np.zeros((block.size, int(labels.max(initial=NOISE)) + 2))
+            np.add.at(votes, (np.arange(block.size)[:, None], lab), w)
+            out[lo:lo + block.size] = votes.argmax(axis=1) - 1
+        for coords, out in zip(coord_sets, coords_out):
+            out[lo:lo + block.size] = (coords[j] * w[:, :, None]).sum(axis=1) / w.sum(axis=1, keepdims=True)
+    return labels_out, coords_out
+
+
+def _sample(err: np.ndarray, size: int, max_errors: int, rng) -> np.ndarray:
+    """Sorted fit rows: every error row (a random `max_errors` of them when there are
+    more) and random correct rows up to `size` in all."""
+    err_idx = np.flatnonzero(err)
+    ok_idx = np.flatnonzero(~err)
+    if err_idx.size > max_errors:
+        err_idx = rng.choice(err_idx, max_errors, replace=False)
+    n_ok = min(ok_idx.size, size - err_idx.size)
+    ok_idx = rng.choice(ok_idx, n_ok, replace=False)
+    return np.sort(np.concatenate([err_idx, ok_idx])).astype(np.intp)
+
+
+def _even_part(err: np.ndarray, rate: float, rng) -> np.ndarray:
+    """Sorted indices of every correct point plus a random share of the error points, so
+    that errors make up `rate` of the result (all error points when they are rarer)."""
+    ok = np.flatnonzero(~err)
+    bad = np.flatnonzero(err)
+    want = int(round(rate * ok.size / max(1e-12, 1.0 - rate)))
+    if want < bad.size:
+        bad = rng.choice(bad, want, replace=False)
+    return np.sort(np.concatenate([ok, bad])).astype(np.intp)
+
+
+def default_min_cluster_size(n_points: int, *, share: float, floor: int) -> int:
+    """HDBSCAN's min_cluster_size for `n_points`: `share` of them, at least `floor`.
+
+    Examples
+    --------
+    >>> default_min_cluster_size(6_000, share=0.005, floor=15), default_min_cluster_size(600, share=0.02, floor=8)
+    (30, 12)
+    """
+    return int(max(floor, round(share * n_points)))
+
+
+# ---------------------------------------------------------------- the entry point
+
+INITS = ("pca", "spectral")
+
+
+def _check_options(strategy, metric, init, counts: Mapping[str, Any], optional: Mapping[str, Any],
+                   sample_above, sample_size) -> None:
+    """Validate the options of `cluster_slices`: `counts` maps a name to (value, least
+    allowed), `optional` likewise for options that may be None."""
+    if strategy not in STRATEGIES:
+        raise SlicefindValueError(f"strategy must be one of {STRATEGIES}; got {strategy!r}.")
+    if metric not in METRICS:
+        raise SlicefindValueError(f"metric must be one of {METRICS}; got {metric!r}.")
+    if init not in INITS:
+        raise SlicefindValueError(f"init must be one of {INITS}; got {init!r}.")
+    for name, (value, low) in list(counts.items()) + list(optional.items()):
+        if value is None and name in optional:
+            continue
+        if isinstance(value, bool) or not isinstance(value, (int, np.integer)):
+            kind = "an integer or None" if name in optional else "an integer"
+            raise SlicefindTypeError(f"{name} must be {kind}; got {type(value).__name__} {value!r}.")
+        if value < low:
+            raise SlicefindValueError(f"{name} must be >= {low}; got {value!r}.")
+    if sample_size > sample_above:
+        msg = f"sample_size ({sample_size}) must not exceed sample_above ({sample_above})."
+        raise SlicefindValueError(msg)
+
+
+def cluster_slices(
+    table: EvalTable,
+    *,
+    strategy: str = "both",
+    random_state=0,
+    metric: str = "cosine",
+    n_neighbors: int = 15,
+    cluster_dims: int = CLUSTER_DIMS,
+    min_cluster_size: int | None = None,
+    min_error_cluster_size: int | None = None,
+    min_samples: int | None = None,
+    sample_above: int = 50_000,
+    sample_size: int = 20_000,
+    max_sample_errors: int | None = None,
+    make_map: bool = True,
+    map_size: int = 5_000,
+    n_epochs: int = 200,
+    init: str = "pca",
+    items=None,
+    progress: bool | None = None,
+) -> ClusterResult:
+    """Regions and error modes of an eval table's embeddings, as slices.
+
+    Parameters
+    ----------
+    table : EvalTable
+        Validated input with ``embeddings`` (`find_slices` builds it).
+    strategy : {"both", "regions", "error_modes"}, default="both"
+        Regions cluster every row; error modes cluster the error rows only and extend each
+        mode to the rows around it.
+    random_state : int, Generator or None, default=0
+        An int (or Generator) makes the result reproducible: the layout then runs on one
+        thread. None uses the parallel layout, faster and not reproducible.
+    metric : {"cosine", "euclidean"}, default="cosine"
+        "cosine" scales each embedding to unit length first.
+    n_neighbors : int, default=15
+        Neighbours in UMAP's graph (and in the assignment of unsampled rows).
+    cluster_dims : int, default=8
+        Dimensions of the UMAP layout that HDBSCAN clusters.
+    min_cluster_size : int, optional
+        Smallest region; default 0.5% of the fitted rows, at least 15.
+    min_error_cluster_size : int, optional
+        Smallest error mode (in error rows); default 2% of the fitted error rows, at least 8.
+    min_samples : int, optional
+        HDBSCAN's ``min_samples``; default ``min(10, min_cluster_size)`` (much faster than
+        HDBSCAN's own default, which equals min_cluster_size).
+    sample_above : int, default=50_000
+        Distinct embedding rows above which the fit runs on a sample.
+    sample_size : int, default=20_000
+        Rows in that sample.
+    max_sample_errors : int, optional
+        Most error rows in the sample; default a quarter of ``sample_size``.
+    make_map : bool, default=True
+        Also lay out a 2-D map for figures.
+    items : ItemSet, optional
+        The table's items (`find_slices` has them); built here when not given.
+    progress : bool, optional
+        Show progress bars; default only for tables of 20,000 rows or more.
+
+    Returns
+    -------
+    ClusterResult
+    """
+    if table.embeddings is None:
+        raise SlicefindValueError("cluster_slices needs embeddings: pass embeddings= to find_slices.")
+    _check_options(strategy, metric, init,
+                   {"n_neighbors": (n_neighbors, 2), "cluster_dims": (cluster_dims, 2),
+                    "sample_above": (sample_above, 100), "sample_size": (sample_size, 100),
+                    "map_size": (map_size, 100), "n_epochs": (n_epochs, 1)},
+                   {"min_cluster_size": (min_cluster_size, 2),
+                    "min_error_cluster_size": (min_error_cluster_size, 2),
+                    "min_samples": (min_samples, 1), "max_sample_errors": (max_sample_errors, 1)},
+                   sample_above, sample_size)
+    _require("umap", package="umap-learn", needed_for="embeddings=")
+    _require("hdbscan", package="hdbscan", needed_for="embeddings=")
+    from slicefind.describe import describe_rows
+
+    timings: dict[str, float] = {}
+    clock = time.perf_counter()
+
+    def lap(name):
+        nonlocal clock
+        now = time.perf_counter()
+        timings[name] = round(now - clock, 3)
+        clock = now
+
+    seeded = random_state is not None
+    rng = np.random.default_rng(random_state)
+    seed_layout, seed_map = (int(s) for s in rng.integers(0, 2**31 - 1, 2))
+    n = table.n_rows
+    if progress is None:
+        progress = n >= 20_000
+    x = table.embeddings
+    first, inverse = _distinct(x)
+    n_distinct = first.size
+    err_any = np.bincount(inverse, weights=table.errors, minlength=n_distinct) > 0
+    lap("distinct")
+
+    params = dict(strategy=strategy, metric=metric, n_neighbors=n_neighbors, cluster_dims=cluster_dims,
+                  min_cluster_size=min_cluster_size, min_error_cluster_size=min_error_cluster_size,
+                  min_samples=min_samples, sample_above=sample_above, sample_size=sample_size,
+                  max_sample_errors=max_sample_errors, make_map=make_map, map_size=map_size,
+                  n_epochs=n_epochs, init=init,
+                  random_state=random_state if isinstance(random_state, (int, np.integer)) else None)
+    diagnostics: dict[str, Any] = dict(n_rows=n, n_distinct=n_distinct, seeded=seeded, timings=timings)
+    if n_distinct < MIN_ROWS_TO_CLUSTER:
+        diagnostics.update(n_fit=0, sampled=False, skipped=f"only {n_distinct} distinct embedding rows")
+        empty = {"region": np.full(n, NOISE), "error_mode": np.full(n, NOISE)}
+        return ClusterResult((), {k: v for k, v in empty.items() if _wanted(k, strategy)}, None, None,
+                             diagnostics, params)
+
+    sampled = n_distinct > sample_above
+    cap = sample_size // 4 if max_sample_errors is None else max_sample_errors
+    fit = _sample(err_any, sample_size, cap, rng) if sampled else np.arange(n_distinct, dtype=np.intp)
+    z = _pca(x, first, fit, PCA_DIMS, metric)
+    lap("pca")
+
+    zf = z[fit]
+    idx, dist = _knn(zf, n_neighbors)
+    graph = _fuzzy_graph(idx, dist)
+    small = min_cluster_size or default_min_cluster_size(fit.size, share=0.005, floor=15)
+    n_comp, largest, fragments = _components(graph, small)
+    lap("knn_graph")
+    if n_comp > 1 and fragments >= FRAGMENT_WARN_SHARE:
+        msg = (f"the {n_neighbors}-nearest-neighbour graph of the embeddings falls apart into "
+               f"{n_comp} pieces, and pieces too small to be a region ({small} rows) hold "
+               f"{fragments:.0%} of the distinct rows fitted; clusters cannot span them and the map "
+               "places them arbitrarily. Near-copies of a few originals often cause this; a larger "
+               "cluster_options={'n_neighbors': ...} joins more of them. Silence with "
+               "warnings.filterwarnings('ignore', category=slicefind.clusters.DisconnectedGraphWarning).")
+        warnings.warn(msg, DisconnectedGraphWarning, stacklevel=_stacklevel())
+
+    coords_f = _umap_layout(zf, graph, cluster_dims, seed_layout if seeded else None, init=init,
+                            n_epochs=n_epochs, progress=progress, what=f"layout ({cluster_dims}-d)")
+    lap("layout")
+    map_f = _map(zf, graph, map_size, n_neighbors, seed_map if seeded else None, rng, init=init,
+                 n_epochs=n_epochs, progress=progress) if make_map else None
+    lap("map")
+
+    n_fit = fit.size
+    err_f = err_any[fit]
+    labels_f: dict[str, np.ndarray] = {}
+    sizes: dict[str, int] = {}
+    if _wanted("region", strategy):
+        # regions are clustered on a part of the fit in which errors are as common as in
+        # the whole table (the sample over-represents them); the other fitted rows join
+        # by nearest neighbours in the layout
+        even = _even_part(err_f, float(err_any.mean()), rng) if sampled else np.arange(n_fit)
+        mcs = min_cluster_size or default_min_cluster_size(even.size, share=0.005, floor=15)
+        region_f = np.full(n_fit, NOISE, dtype=np.int64)
+        region_f[even] = _hdbscan(coords_f[even], mcs, min_samples or min(10, mcs))
+        if even.size < n_fit:
+            others = np.setdiff1d(np.arange(n_fit), even, assume_unique=True)
+            (region_f[others],), _ = _assign(coords_f, even, others, [region_f[even]], [],
+                                             n_neighbors, progress=False)
+        labels_f["region"] = region_f
+        sizes["region"] = mcs
+    lap("hdbscan_regions")
+    if _wanted("error_mode", strategy):
+        n_err_f = int(err_f.sum())
+        mcs_e = min_error_cluster_size or default_min_cluster_size(n_err_f, share=0.02, floor=8)
+        modes = _hdbscan(coords_f[err_f], mcs_e, min_samples or min(10, mcs_e))
+        labels_f["error_mode"] = _extend_modes(coords_f, err_f, modes, n_vote=5)
+        sizes["error_mode"] = mcs_e
+    lap("hdbscan_error_modes")
+
+    # every distinct row: the fitted ones directly, the rest by their nearest fitted rows
+    labels_d = {k: np.empty(n_distinct, dtype=np.int64) for k in labels_f}
+    coords_d = np.empty((n_distinct, cluster_dims), dtype=np.float32)
+    map_d = np.empty((n_distinct, 2), dtype=np.float32) if make_map else None
+    for k, v in labels_f.items():
+        labels_d[k][fit] = v
+    coords_d[fit] = coords_f
+    if make_map:
+        map_d[fit] = map_f
+    if sampled:
+        rest = np.setdiff1d(np.arange(n_distinct), fit, assume_unique=True)
+        keys = list(labels_f)
+        coord_sets = [coords_f] + ([map_f] if make_map else [])
+        got_labels, got_coords = _assign(z, fit, rest, [labels_f[k] for k in keys], coord_sets,
+                                         n_neighbors, progress)
+        for k, v in zip(keys, got_labels):
+            labels_d[k][rest] = v
+        coords_d[rest] = got_coords[0]
+        if make_map:
+            map_d[rest] = got_coords[1]
+    lap("assign")
+
+    labels = {k: v[inverse] for k, v in labels_d.items()}
+    coords = coords_d[inverse]
+    map_xy = map_d[inverse] if make_map else None
+
+    if items is None:
+        from slicefind.items import build_items
+        from slicefind.slices import default_min_rows
+
+        items = build_items(table, min_rows=default_min_rows(n), min_errors=1) if table.kinds else None
+    slices = []
+    for source, key in (("region", "region"), ("error_mode", "error_mode")):
+        if key not in labels:
+            continue
+        lab = labels[key]
+        for c in range(int(lab.max(initial=NOISE)) + 1):
+            rows = np.flatnonzero(lab == c).astype(np.intp)
+            if rows.size == 0:
+                continue
+            text = describe_rows(table, rows, items=items)
+            slices.append(Slice(source=source, description=text, rows=rows, key=f"{key}:{c}",
+                                extra={"cluster": c}))
+    lap("describe")
+
+    diagnostics.update(
+        n_fit=int(n_fit), sampled=bool(sampled), n_graph_components=n_comp, connected=n_comp == 1,
+        largest_component_share=largest, fragment_share=fragments, min_cluster_size=sizes,
+        n_clusters={k: int(v.max(initial=NOISE)) + 1 for k, v in labels.items()},
+        noise_share={k: float(np.mean(v == NOISE)) for k, v in labels.items()})
+    return ClusterResult(slices=tuple(slices), labels=labels, map_xy=map_xy, coords=coords,
+                         diagnostics=diagnostics, params=params)
+
+
+def _wanted(key: str, strategy: str) -> bool:
+    """Whether labelling `key` ("region"/"error_mode") belongs to `strategy`."""
+    return strategy == "both" or strategy == key + "s"

@@ -1,0 +1,388 @@
+"""What makes a slice distinct: enriched items, labels and confusions, terms, exemplars.
+
+Works for every slice, rule or cluster. `describe_rows` writes the one-line text a
+cluster carries in the table (``71% label_stock = glossy, mostly 4 -> 9; 412 rows, 38%
+errors``); `describe_slice` gives the report and the review page the full tables.
+"""
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+
+from slicefind import bitset
+from slicefind.table import EvalTable, SlicefindTypeError, SlicefindValueError, _suggest
+
+__all__ = [
+    "SliceDescription",
+    "describe_slice",
+    "describe_rows",
+    "enriched_items",
+    "label_shares",
+    "confusions",
+    "distinctive_terms",
+    "exemplars",
+]
+
+#: an item is named in a summary when at least this share of the slice holds it ...
+SUMMARY_MIN_SHARE = 0.5
+#: ... and it is at least this many times as common in the slice as overall
+SUMMARY_MIN_LIFT = 1.5
+#: rows the medoid search and the term statistics look at, at most
+_MAX_MEDOID_ROWS = 2_000
+_MAX_TEXT_ROWS = 50_000
+
+
+def _percent(share: float) -> str:
+    """'71%' (rounded down below 100%, so 99.6% never reads as 100%)."""
+    value = math.floor(share * 100) if share < 1 else 100
+    return f"{value}%"
+
+
+def _value_text(value) -> str:
+    """Readable text of a label value."""
+    if isinstance(value, (float, np.floating)) and float(value).is_integer():
+        return str(int(value))
+    return str(value)
+
+
+def enriched_items(table: EvalTable, rows: np.ndarray, *, items, top: int = 5,
+                   max_per_column: int = 2, exclude_texts=()) -> pd.DataFrame:
+    """Items most over-represented in `rows` (positions among the analysed rows).
+
+    Ranks items by the gain in share, ``slice_share - overall_share``, and keeps those
+    with ``lift = slice_share / overall_share > 1``, at most `max_per_column` per column.
+    Columns: ``item, column, n_rows, slice_share, overall_share, lift``.
+    """
+    columns = ["item", "column", "n_rows", "slice_share", "overall_share", "lift"]
+    if items is None or len(items) == 0 or rows.size == 0:
+        return pd.DataFrame({c: pd.Series(dtype=object if c in ("item", "column") else float)
+                             for c in columns})
+    mask = np.zeros(table.n_rows, dtype=bool)
+    mask[rows] = True
+    packed = bitset.pack(mask)[0]
+    inside = np.bitwise_count(items.bits & packed).sum(axis=1, dtype=np.int64)
+    slice_share = inside / rows.size
+    overall = items.n_rows / table.n_rows
+    lift = slice_share / overall
+    gain = slice_share - overall
+    order = np.lexsort((np.arange(len(items)), -gain))
+    chosen, per_column = [], {}
+    skip = set(exclude_texts)
+    for i in order:
+        if lift[i] <= 1.0 or len(chosen) >= top:
+            break
+        item = items.items[i]
+        if item.text in skip or per_column.get(item.column, 0) >= max_per_column:
+            continue
+        per_column[item.column] = per_column.get(item.column, 0) + 1
+        chosen.append(i)
+    frame = pd.DataFrame({
+        "item": [items.items[i].text for i in chosen],
+        "column": [items.items[i].column for i in chosen],
+        "n_rows": inside[chosen].astype(np.int64),
+        "slice_share": slice_share[chosen],
+        "overall_share": overall[chosen],
+        "lift": lift[chosen],
+    })
+    return frame[columns]
+
+
+def label_shares(table: EvalTable, rows: np.ndarray, *, top: int = 3) -> pd.DataFrame:
+    """The most common true labels in `rows`: ``label, n_rows, slice_share, overall_share``
+    (empty when the table has no labels)."""
+    columns = ["label", "n_rows", "slice_share", "overall_share"]
+    if table.label is None or rows.size == 0:
+        return pd.DataFrame({c: pd.Series(dtype=object if c == "label" else float) for c in columns})
+    inside = pd.Series(table.label[rows]).value_counts(sort=False)
+    overall = pd.Series(table.label).value_counts(sort=False)
+    frame = pd.DataFrame({"label": inside.index.to_numpy(dtype=object), "n_rows": inside.to_numpy(np.int64)})
+    frame["slice_share"] = frame["n_rows"] / rows.size
+    frame["overall_share"] = overall.reindex(inside.index).to_numpy() / table.n_rows
+    frame["_text"] = frame["label"].map(_value_text)
+    frame = frame.sort_values(["n_rows", "_text"], ascending=[False, True], kind="stable")
+    return frame.drop(columns="_text").head(top).reset_index(drop=True)[columns]
+
+
+def confusions(table: EvalTable, rows: np.ndarray, *, top: int = 5) -> pd.DataFrame:
+    """The commonest ``label -> prediction`` pairs among the errors in `rows`:
+    ``label, prediction, n_errors, error_share`` (share of the slice's errors); empty
+    without labels and predictions."""
+    columns = ["label", "prediction", "n_errors", "error_share"]
+    empty = pd.DataFrame({"label": pd.Series(dtype=object), "prediction": pd.Series(dtype=object),
+                          "n_errors": pd.Series(dtype=np.int64), "error_share": pd.Series(dtype=float)})
+    if table.label is None or table.prediction is None or rows.size == 0:
+        return empty
+    wrong = rows[table.errors[rows]]
+    if wrong.size == 0:
+        return empty
+    pairs = pd.DataFrame({"label": table.label[wrong], "prediction": table.prediction[wrong]})
+    counts = pairs.value_counts(sort=False).rename("n_errors").reset_index()
+    counts["_text"] = counts["label"].map(_value_text) + " -> " + counts["prediction"].map(_value_text)
+    counts = counts.sort_values(["n_errors", "_text"], ascending=[False, True], kind="stable").head(top)
+    counts["error_share"] = counts["n_errors"] / wrong.size
+    counts["n_errors"] = counts["n_errors"].astype(np.int64)
+    return counts.drop(columns="_text").reset_index(drop=True)[columns]
+
+
+def distinctive_terms(texts, rows: np.ndarray, *, top: int = 10, random_state=0) -> pd.DataFrame:
+    """Terms that set the texts of `rows` apart from the rest (class-based TF-IDF).
+
+    Two classes, the slice and the rest; a term's weight in the slice is
+    ``tf * log(1 + A / f)``, with ``tf`` its count in the slice over the slice's word
+    count, ``A`` the mean word count per class and ``f`` its count over both classes.
+    Terms seen fewer than twice in the slice are left out. Columns: ``term, weight,
+    n_slice, n_rest``. At most 50,000 rest rows are read (a seeded sample).
+
+    References
+    ----------
+    .. [1] M. Grootendorst, "BERTopic: Neural topic modeling with a class-based TF-IDF
+           procedure", arXiv:2203.05794 (2022), section 3.3.
+
+    Examples
+    --------
+    >>> texts = ["torn label", "torn corner", "clean label", "clean print", "clean"]
+    >>> distinctive_terms(texts, np.array([0, 1]))["term"].tolist()
+    ['torn']
+    """
+    from sklearn.feature_extraction.text import CountVectorizer
+
+    texts = pd.Series(texts).fillna("").astype(str).to_numpy()
+    n = texts.size
+    mask = np.zeros(n, dtype=bool)
+    mask[rows] = True
+    rest = np.flatnonzero(~mask)
+    if rest.size > _MAX_TEXT_ROWS:
+        rest = np.sort(np.random.default_rng(random_state).choice(rest, _MAX_TEXT_ROWS, replace=False))
+    inside_rows = rows if rows.size <= _MAX_TEXT_ROWS else np.sort(
+        np.random.default_rng(random_state).choice(rows, _MAX_TEXT_ROWS, replace=False))
+    columns = ["term", "weight", "n_slice", "n_rest"]
+    empty = pd.DataFrame({"term": pd.Series(dtype=object), "weight": pd.Series(dtype=float),
+                          "n_slice": pd.Series(dtype=np.int64), "n_rest": pd.Series(dtype=np.int64)})
+    docs = [" ".join(texts[inside_rows]), " ".join(texts[rest])]
+    vectorizer = CountVectorizer(token_pattern=r"(?u)\b\w\w+\b", lowercase=True)
+    try:
+        counts = vectorizer.fit_transform(docs).toarray().astype(np.float64)
+    except ValueError:                       # no term at all (empty texts)
+        return empty
+    # rest counts rescaled to the full rest when it was sampled
+    scale = (n - rows.size) / max(rest.size, 1)
+    counts[1] *= scale
+    words = counts.sum(axis=1)
+    tf = counts[0] / max(words[0], 1.0)
+    average = words.mean()
+    freq = counts.sum(axis=0)
+    weight = tf * np.log1p(average / np.maximum(freq, 1e-12))
+    terms = vectorizer.get_feature_names_out()
+    keep = counts[0] >= 2
+    order = np.lexsort((terms, -weight))
+    order = [i for i in order if keep[i]][:top]
+    # a term counts as distinct only when the slice uses it more than its share of words
+    order = [i for i in order if counts[0, i] / max(words[0], 1) > counts[1, i] / max(words[1], 1)]
+    if not order:
+        return empty
+    return pd.DataFrame({"term": terms[order], "weight": weight[order],
+                         "n_slice": counts[0, order].round().astype(np.int64),
+                         "n_rest": counts[1, order].round().astype(np.int64)})[columns]
+
+
+def exemplars(table: EvalTable, rows: np.ndarray, *, coords=None, n_exemplars: int = 6,
+              random_state=0) -> pd.DataFrame:
+    """Rows to show a reviewer: those nearest the slice's medoid, then random members.
+
+    The medoid is the member with the least total distance to the others in `coords`
+    (the clusters' reduced space, or the raw embeddings), searched among at most 2,000
+    members. Half the exemplars (rounded up) are nearest it, the rest are a random draw
+    of the other members; without coordinates all are random. Columns: ``row`` (position
+    in the user's frame), ``kind`` ("medoid", "near_medoid" or "random"), ``error``,
+    ``label``, ``prediction``, ``distance`` (to the medoid; NaN without coordinates).
+    """
+    rng = np.random.default_rng(random_state)
+    k = min(n_exemplars, rows.size)
+    picked, kinds, dist = [], [], []
+    if coords is not None and k > 0:
+        points = np.asarray(coords[rows], dtype=np.float64)
+        pool = np.arange(rows.size)
+        if pool.size > _MAX_MEDOID_ROWS:
+            pool = np.sort(rng.choice(pool, _MAX_MEDOID_ROWS, replace=False))
+        sub = points[pool]
+        sq = (sub * sub).sum(axis=1)
+        total = np.sqrt(np.maximum(sq[:, None] + sq[None, :] - 2 * sub @ sub.T, 0.0)).sum(axis=1)
+        medoid = pool[int(np.argmin(total))]
+        to_medoid = np.linalg.norm(points - points[medoid], axis=1)
+        n_near = (k + 1) // 2
+        near = np.lexsort((np.arange(rows.size), to_medoid))[:n_near]
+        picked += near.tolist()
+        kinds += ["medoid"] + ["near_medoid"] * (near.size - 1)
+        others = np.setdiff1d(np.arange(rows.size), near)
+        extra = rng.choice(others, min(k - near.size, others.size), replace=False) if others.size else []
+        picked += list(extra)
+        kinds += ["random"] * len(extra)
+        dist = to_medoid[picked].tolist()
+    elif k > 0:
+        picked = sorted(rng.choice(rows.size, k, replace=False).tolist())
+        kinds = ["random"] * k
+        dist = [np.nan] * k
+    chosen = rows[np.asarray(picked, dtype=np.intp)] if picked else np.zeros(0, dtype=np.intp)
+    frame = pd.DataFrame({
+        "row": table.positions[chosen].astype(np.int64),
+        "kind": kinds,
+        "error": table.errors[chosen],
+        "label": table.label[chosen] if table.label is not None else None,
+        "prediction": table.prediction[chosen] if table.prediction is not None else None,
+        "distance": np.asarray(dist, dtype=np.float64),
+    })
+    if table.id_column is not None:
+        frame.insert(1, table.id_column, table.data[table.id_column].to_numpy()[chosen])
+    return frame
+
+
+def _confusion_text(conf: pd.DataFrame, n_errors: int) -> str:
+    """'mostly 4 -> 9' or '3 -> 5 (31%), 8 -> 1 (22%)', or '' when nothing stands out."""
+    if conf.empty or n_errors < 3:
+        return ""
+    pair = f"{_value_text(conf.at[0, 'label'])} -> {_value_text(conf.at[0, 'prediction'])}"
+    if conf.at[0, "error_share"] >= 0.5:
+        return f"mostly {pair}"
+    parts = [f"{_value_text(a)} -> {_value_text(b)} ({_percent(s)})"
+             for a, b, s in conf[["label", "prediction", "error_share"]].head(2).itertuples(index=False)
+             if s >= 0.2]
+    return ", ".join(parts)
+
+
+def describe_rows(table: EvalTable, rows: np.ndarray, *, items=None, exclude_texts=()) -> str:
+    """One line that says what the rows (positions among the analysed rows) share.
+
+    Up to two metadata items held by at least half of the rows and at least 1.5 times
+    as common as overall, a dominant true label (same test), the dominant confusions,
+    then size and error rate: ``71% label_stock = glossy, mostly 4 -> 9; 412 rows, 38%
+    errors``. The slice id is not part of it.
+    """
+    rows = np.asarray(rows, dtype=np.intp)
+    parts = []
+    enriched = enriched_items(table, rows, items=items, top=5, max_per_column=1,
+                              exclude_texts=exclude_texts)
+    for text, share, lift in enriched[["item", "slice_share", "lift"]].itertuples(index=False):
+        if share >= SUMMARY_MIN_SHARE and lift >= SUMMARY_MIN_LIFT and len(parts) < 2:
+            parts.append(f"{_percent(share)} {text}")
+    labels = label_shares(table, rows, top=1)
+    if not labels.empty:
+        share, overall = labels.at[0, "slice_share"], labels.at[0, "overall_share"]
+        if share >= SUMMARY_MIN_SHARE and share >= SUMMARY_MIN_LIFT * overall:
+            parts.append(f"{_percent(share)} label = {_value_text(labels.at[0, 'label'])}")
+    n_errors = int(table.errors[rows].sum())
+    confusion = _confusion_text(confusions(table, rows, top=2), n_errors)
+    if confusion:
+        parts.append(confusion)
+    size = f"{rows.size:,} rows, {_percent(n_errors / rows.size) if rows.size else '0%'} errors"
+    return f"{', '.join(parts)}; {size}" if parts else size
+
+
+@dataclass(frozen=True, repr=False)
+class SliceDescription:
+    """What sets one slice apart, from `describe_slice`.
+
+    Attributes
+    ----------
+    slice_id, source, summary : str
+        The id, its source ("rule", "region", "error_mode") and a one-line summary.
+    n_rows, n_errors : int
+    items : DataFrame
+        Over-represented metadata items (`enriched_items`).
+    labels : DataFrame
+        Commonest true labels (`label_shares`).
+    confusions : DataFrame
+        Commonest label -> prediction pairs among its errors (`confusions`).
+    terms : DataFrame or None
+        Distinctive terms of ``text_column`` (`distinctive_terms`), None without one.
+    exemplars : DataFrame
+        Rows for a reviewer (`exemplars`).
+    """
+
+    slice_id: str
+    source: str
+    summary: str
+    n_rows: int
+    n_errors: int
+    items: pd.DataFrame
+    labels: pd.DataFrame
+    confusions: pd.DataFrame
+    terms: pd.DataFrame | None
+    exemplars: pd.DataFrame
+
+    def __repr__(self):
+        return f"SliceDescription({self.slice_id!r}, n_rows={self.n_rows}, summary={self.summary!r})"
+
+
+def describe_slice(found, slice_id: str, *, text_column: str | None = None, n_exemplars: int = 6,
+                   top: int = 5, random_state=0) -> SliceDescription:
+    """Describe one slice of a `find_slices` result for a report or a reviewer.
+
+    Parameters
+    ----------
+    found : FoundSlices
+        The result holding the slice.
+    slice_id : str
+        ``"R1"``, ``"C2"``, ...
+    text_column : str, optional
+        A column of free text (mined or not) whose distinctive terms to list.
+    n_exemplars : int, default=6
+        Rows to pick for a reviewer.
+    top : int, default=5
+        Rows of each table (items, labels, confusions), and twice as many terms.
+    random_state : int, Generator or None, default=0
+        Seeds the random exemplars and the text sample.
+
+    Returns
+    -------
+    SliceDescription
+
+    Examples
+    --------
+    >>> from slicefind.slices import find_slices
+    >>> rng = np.random.default_rng(0)
+    >>> frame = pd.DataFrame({"scanner": rng.choice(["S1", "S2", "S3"], 3000),
+    ...                       "shift": rng.choice(["day", "night"], 3000)})
+    >>> wrong = rng.random(3000) < np.where((frame["scanner"] == "S3") & (frame["shift"] == "night"), 0.4, 0.05)
+    >>> found = find_slices(frame, errors=wrong)
+    >>> describe_slice(found, "R1").summary
+    'scanner = S3 and shift = night: 494 rows, 38% errors'
+    """
+    if not isinstance(slice_id, str):
+        raise SlicefindTypeError(f"slice_id must be a string such as 'R1'; got {type(slice_id).__name__}.")
+    table: EvalTable = found.eval_table
+    user_rows = found.rows(slice_id)                        # raises for an unknown id
+    rows = np.searchsorted(table.positions, user_rows).astype(np.intp)
+    if text_column is not None and text_column not in table.data.columns:
+        msg = f"text_column={text_column!r} is not a column of data.{_suggest(text_column, table.data.columns)}"
+        raise SlicefindValueError(msg)
+    if isinstance(n_exemplars, bool) or not isinstance(n_exemplars, (int, np.integer)) or n_exemplars < 0:
+        raise SlicefindValueError(f"n_exemplars must be an integer >= 0; got {n_exemplars!r}.")
+    if isinstance(top, bool) or not isinstance(top, (int, np.integer)) or top < 1:
+        raise SlicefindValueError(f"top must be an integer >= 1; got {top!r}.")
+    record = found.table.loc[found.table["slice_id"] == slice_id].iloc[0]
+    source = str(record["source"])
+    items = found.extras.get("items")
+    own = tuple(str(record["description"]).split(" and ")) if source == "rule" else ()
+    clusters = found.extras.get("clusters")
+    coords = getattr(clusters, "coords", None)
+    if coords is None:
+        coords = table.embeddings
+    summary = describe_rows(table, rows, items=items, exclude_texts=own)
+    if source == "rule":
+        summary = f"{record['description']}: {summary}"
+    terms = None
+    if text_column is not None:
+        terms = distinctive_terms(table.data[text_column].to_numpy(), rows, top=2 * top,
+                                  random_state=random_state)
+    return SliceDescription(
+        slice_id=slice_id, source=source, summary=summary, n_rows=int(rows.size),
+        n_errors=int(table.errors[rows].sum()),
+        items=enriched_items(table, rows, items=items, top=top, exclude_texts=own),
+        labels=label_shares(table, rows, top=top),
+        confusions=confusions(table, rows, top=top),
+        terms=terms,
+        exemplars=exemplars(table, rows, coords=coords, n_exemplars=n_exemplars,
+                            random_state=random_state))

@@ -537,7 +537,7 @@ def test_to_dict_survives_json(depot, fixed_s3):
     """Comparison.to_dict() goes through JSON and from_dict() gives the same tables back."""
     frame = depot["frame"].assign(read_v2=fixed_s3[0])
     result = compare(depot["found"], after="read_v2", data=frame)
-    back = Comparison.from_dict(json.loads(json.dumps(result.to_dict())))
+    back = Comparison.from_dict(json.loads(json.dumps(result.to_dict(), allow_nan=False)))
     pd.testing.assert_frame_equal(result.table, back.table)
     pd.testing.assert_frame_equal(result.new_slices, back.new_slices)
     assert result.overall == back.overall
@@ -561,3 +561,34 @@ def test_report_section_shows_bars_and_highlights_regressions(depot):
     figure = re.search(r"id='compare-figure' alt='[^']*' src='data:image/png;base64,([^']+)'", page)
     assert base64.b64decode(figure.group(1)).startswith(b"\x89PNG")
     assert "id='compare'" not in render_report(depot["found"])
+
+
+def test_only_the_scanned_rows_are_compared(depot, tmp_path):
+    """A scan of false negatives (label 1 only) compares those rows; an after file may hold the
+    other rows too, but an id the frame never had is refused."""
+    rng = np.random.default_rng(8)
+    frame = depot["frame"].copy()
+    frame["is_seven"] = (frame["digit"] == 7).astype(int)
+    frame["said_seven"] = np.where(depot["s3"] & (rng.random(N_ROWS) < 0.6), 0, frame["is_seven"])
+    frame.loc[rng.random(N_ROWS) < 0.04, "said_seven"] = 1 - frame["is_seven"]
+    found = find_slices(frame, label="is_seven", prediction="said_seven", error_kind="false_negative",
+                        id_column="parcel", exclude=("digit", "read_v1"))
+    positives = int(frame["is_seven"].sum())
+    after = frame["is_seven"].to_numpy().copy()           # the fixed model misses no seven
+    result = compare(found, after=after)
+    assert positives == int(result.overall["n_rows"]) == found.eval_table.n_rows
+    assert 0 == int(result.overall["n_errors_after"]) and 0 == int(result.overall["n_broken"])
+    folder = tmp_path / "ws"
+    with Workspace(folder) as ws:
+        ws.save_scan(found)
+    sheet = pd.DataFrame({"parcel": frame["parcel"], "said_seven_v2": after})
+    sheet.to_csv(tmp_path / "after.csv", index=False)
+    matched = run_compare(folder, tmp_path / "after.csv")
+    assert N_ROWS - positives == matched.params["n_ignored"]
+    pd.testing.assert_frame_equal(result.table, matched.table)
+    too_many = pd.concat([sheet, pd.DataFrame({"parcel": ["X1"], "said_seven_v2": [1]})])
+    too_many.to_csv(tmp_path / "after.csv", index=False)
+    data_path = tmp_path / "depot.csv"
+    frame.to_csv(data_path, index=False)
+    with pytest.raises(SlicefindValueError, match=r"1 ids in 'parcel' that are not rows of the scan \('X1'\)"):
+        run_compare(folder, tmp_path / "after.csv", data_path=data_path)

@@ -906,7 +906,7 @@ def format_comparison(cmp: Comparison, *, top: int = 15) -> str:
                      f"it (Jaccard >= {NEW_JACCARD}); 'worse' = overlaps one and got significantly worse")
         for _, r in new.head(top).iterrows():
             near = f", closest {r['closest_slice']} (J = {r['jaccard']:.2f})" if r["closest_slice"] else ""
-            lines.append(f"  {r['status']:<5} {r['slice_id']:<4} {r['description']}: {int(r['n_rows']):,} rows, "
+            lines.append(f"  {r['status']:<5} {r['slice_id']} of the after scan, {r['description']}: {int(r['n_rows']):,} rows, "
                          f"{_pct(r['error_rate_before'])} -> {_pct(r['error_rate_after'])}, q = "
                          f"{r['q_value']:.2g}{near}")
     elif cmp.params.get("rescan") not in (None, "no data given", "off"):

@@ -491,7 +491,7 @@ def _compare_section(comparison) -> str:
                      "of the after model's errors: <i>new</i> when no earlier slice overlaps them "
                      "(Jaccard &ge; 0.5), <i>worse</i> when they overlap one and got significantly "
                      "worse.</p>")
-        parts.append(_table(new, [("slice_id", "id", "text"), ("status", "status", "text"),
+        parts.append(_table(new, [("slice_id", "id in the after scan", "text"), ("status", "status", "text"),
                                   ("description", "description", "text"), ("n_rows", "rows", "int"),
                                   ("error_rate_before", "before", "pct"),
                                   ("error_rate_after", "after", "pct"), ("q_value", "q", "p"),

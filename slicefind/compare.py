@@ -19,7 +19,7 @@ from __future__ import annotations
 import inspect
 import math
 import os
-from dataclasses import dataclass, field, replace
+from dataclasses import dataclass, replace
 from typing import Any, Mapping
 
 import numpy as np

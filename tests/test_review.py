@@ -5,6 +5,7 @@ import json
 import os
 import shutil
 import sqlite3
+import tempfile
 import threading
 import urllib.error
 import urllib.request
@@ -17,7 +18,7 @@ import slicefind as sf
 from slicefind import review
 from slicefind.describe import describe_slice
 from slicefind.queue import build_queue
-from slicefind.tally import read_reviews
+from slicefind.tally import read_reviews, tally
 from slicefind.workspace import Workspace
 
 SHOW = ("scanner", "belt_speed", "label_stock", "shift")
@@ -29,6 +30,10 @@ GLYPHS = {
     6: "00110 01000 10000 11110 10001 10001 01110", 7: "11111 00001 00010 00100 01000 01000 01000",
     8: "01110 10001 10001 01110 10001 10001 01110", 9: "01110 10001 10001 01111 00001 00010 01100",
 }
+#: where the browser test leaves its screenshots for a reviewer (also under pytest's tmp_path)
+SCREENSHOT = os.path.join(tempfile.gettempdir(), "slicefind-review.png")
+CHROMIUM_ARGS = ["--no-sandbox", "--disable-gpu", "--disable-background-networking",
+                 "--disable-component-update", "--disable-sync", "--no-first-run"]
 
 
 def _depot(n=2400, seed=7):
@@ -323,6 +328,18 @@ def test_paths_outside_the_page_are_not_served(shared, path):
     assert b"SQLite" not in body and b"import" not in body
 
 
+def test_page_and_static_files_are_served_with_a_strict_policy(shared):
+    """The page, its CSS and JS come back with a content security policy and no caching."""
+    server, _ = shared
+    for path, kind in (("", "text/html"), ("static/review.js", "text/javascript"),
+                       ("static/review.css", "text/css")):
+        request = urllib.request.Request(f"{server.url}{path}")
+        with urllib.request.urlopen(request, timeout=10) as answer:
+            assert (200, kind) == (answer.status, answer.headers["Content-Type"].split(";")[0])
+            assert "script-src 'self'" in answer.headers["Content-Security-Policy"]
+            assert "no-store" == answer.headers["Cache-Control"]
+
+
 def test_thumbnail_is_a_png_of_the_row(shared, depot):
     """img/ROW is a PNG whose pixels (read by Pillow) are the row's crop on the crops' ink scale."""
     server, _ = shared
@@ -503,3 +520,161 @@ def test_workspace_without_queue_or_scan_is_refused(tmp_path, depot):
         ws.save_scan(sf.find_slices(frame, label="digit", prediction="read_as"))
     with pytest.raises(ValueError, match="no queue yet"):
         review.make_server(tmp_path / "ws")
+
+
+# --- the page in a browser ------------------------------------------------------------------
+
+
+def _chromium_path():
+    for candidate in ("/usr/bin/chromium", shutil.which("chromium"), shutil.which("chromium-browser"),
+                      shutil.which("google-chrome")):
+        if candidate and os.path.exists(candidate):
+            return candidate
+    return None
+
+
+def _floats(text):
+    return float("nan") if text in ("", None) else float(text)
+
+
+def _same(a, b):
+    return (np.isnan(a) and np.isnan(b)) or a == b
+
+
+def test_page_tags_with_keys_and_survives_a_reload(workspace, tmp_path):
+    """Keys tag ten examples and add categories; after a reload, an export and an import all agree with the workspace."""
+    executable = _chromium_path()
+    if executable is None:
+        pytest.skip("Chromium not found (looked for /usr/bin/chromium and chromium, chromium-browser, "
+                    "google-chrome on PATH); install Debian's chromium to run the browser test.")
+    try:
+        from playwright.sync_api import sync_playwright
+    except ImportError:
+        pytest.fail("the browser test needs Playwright for Python: pip install -e '.[test]'")
+    with Workspace(workspace, create=False) as ws:
+        queue = ws.load_queue()
+    imported_row = int(queue.rows("R2")[0])
+    problems = []
+    plan = ["1", "1", "12", "1", "2", "1", "1", "2", "1", "211"]     # keys per example; "211" ends with 2 only
+    server = review.make_server(workspace).start()
+    try:
+        with sync_playwright() as pw:
+            browser = pw.chromium.launch(executable_path=executable, headless=True, args=CHROMIUM_ARGS)
+            page = browser.new_page(viewport={"width": 1440, "height": 1000}, accept_downloads=True)
+            page.on("pageerror", lambda exc: problems.append(f"page error: {exc}"))
+            page.on("console", lambda msg: problems.append(f"console {msg.type}: {msg.text}")
+                    if msg.type in ("error", "warning") else None)
+            page.goto(server.url)
+            page.wait_for_selector("body[data-ready='1']")
+            keys = page.keyboard
+
+            def settle():
+                page.wait_for_selector("body[data-pending='0']", state="attached")
+
+            def current_row():
+                return int(page.get_attribute(".card.current", "data-row"))
+
+            for name in ("faded print", "Smeared ink"):
+                keys.press("a")
+                keys.type(name)
+                keys.press("Enter")
+            keys.press("n")
+            keys.type("Faded print")
+            keys.press("Enter")
+            settle()
+            tagged = {}
+            for presses in plan:
+                row = current_row()
+                for key in presses:
+                    keys.press(key)
+                keys.press("j")
+                tagged[row] = presses
+            plain = current_row()
+            keys.press("r")                                       # reviewed, no category; moves on
+            keys.press("a")
+            keys.type("torn label")
+            keys.press("Enter")
+            keys.press("?")
+            help_open = page.is_visible("#help")
+            keys.press("Escape")
+            settle()
+            where = current_row()
+            page.reload()
+            page.wait_for_selector("body[data-ready='1']")
+
+            shown = {row: page.get_attribute(f"#card-{row}", "data-tags") for row in tagged}
+            plain_shown = (page.get_attribute(f"#card-{plain}", "data-reviewed"),
+                           page.get_attribute(f"#card-{plain}", "data-tags"))
+            listed = page.locator("#categories li").evaluate_all("items => items.map(i => i.dataset.category)")
+            name = page.input_value("#cand-name")
+            pressed = page.locator(f"#card-{next(iter(tagged))} .tag[aria-pressed='true']").all_inner_texts()
+            current = current_row()
+            page.wait_for_selector(f"#card-{current} img.thumb")
+            loaded = page.locator(f"#card-{current} img.thumb").evaluate(
+                "img => img.decode().then(() => img.naturalWidth)")
+
+            with page.expect_download() as download:
+                page.click("#export")
+            exported = tmp_path / "exported.csv"
+            download.value.save_as(exported)
+            sheet = pd.read_csv(exported, encoding="utf-8-sig", dtype=str, keep_default_na=False)
+            sheet.loc[sheet["row"] == str(imported_row), ["reviewed", "tags"]] = ["yes", "Torn label"]
+            filled = tmp_path / "filled.csv"
+            sheet.to_csv(filled, index=False)
+            page.set_input_files("#import-file", str(filled))
+            page.wait_for_selector("#status:has-text('imported filled.csv')")
+            settle()
+
+            page_categories = page.locator("#tally tr.cat").evaluate_all(
+                "rows => rows.map(r => [r.dataset.category, r.dataset.nTagged, r.dataset.share,"
+                " r.dataset.shareLow, r.dataset.shareHigh, r.dataset.headroom])")
+            page_slices = page.locator("#tally li.verdict").evaluate_all(
+                "rows => rows.map(r => [r.dataset.sliceId, r.dataset.name, r.dataset.verdict, r.dataset.precision,"
+                " r.dataset.precisionLow, r.dataset.precisionHigh, r.dataset.moreNeeded])")
+            page.evaluate("() => { window.scrollTo(0, 0); document.getElementById('status').className = 'status'; }")
+            page.wait_for_timeout(300)
+            shot = tmp_path / "review_page.png"
+            page.screenshot(path=str(shot))
+            page.screenshot(path=str(tmp_path / "review_page_full.png"), full_page=True)
+            shutil.copy(shot, SCREENSHOT)
+            shutil.copy(tmp_path / "review_page_full.png", SCREENSHOT.replace(".png", "-full.png"))
+            browser.close()
+    finally:
+        server.close()
+
+    categories = ["faded print", "smeared ink", "torn label"]
+    expected = {}
+    for row, presses in tagged.items():
+        on = set()
+        for key in presses:
+            on ^= {categories[int(key) - 1]}
+        expected[row] = ";".join(sorted(on))
+    with Workspace(workspace, create=False) as ws:
+        reviews = ws.reviews()
+        names = ws.names()
+        result = ws.tally()
+        direct = tally(ws.load_queue(), reviews, names=names)
+    stored = reviews.set_index("row")
+    exported_reviews = read_reviews(str(exported), queue).set_index("row")
+    assert 10 == len(tagged) == sum(bool(t) for t in expected.values())
+    assert expected == shown
+    assert expected == {row: stored.at[row, "tags"] for row in tagged}
+    assert (("1", ""), (True, "")) == (plain_shown, (bool(stored.at[plain, "reviewed"]), stored.at[plain, "tags"]))
+    assert categories == listed
+    assert ({"R1": "faded print"}, "faded print") == (names, name)
+    assert ["1fadedprint"] == ["".join(t.split()) for t in pressed]
+    assert (where, 12, True) == (current, loaded, help_open)          # back where it was; crop shown
+    assert expected == {row: exported_reviews.at[row, "tags"] for row in tagged}
+    assert "torn label" == stored.at[imported_row, "tags"]
+    for frame in (result, direct):
+        want = [[c.category, int(c.n_tagged), c.share, c.share_low, c.share_high, c.headroom]
+                for c in frame.categories.itertuples()]
+        got = [[r[0], int(r[1]), *map(_floats, r[2:])] for r in page_categories]
+        assert [w[:2] for w in want] == [g[:2] for g in got]
+        assert all(_same(a, b) for w, g in zip(want, got) for a, b in zip(w[2:], g[2:]))
+        want = [[s.slice_id, s.name, s.verdict, s.precision, s.precision_low, s.precision_high,
+                 float(s.more_needed)] for s in frame.slices.itertuples()]
+        got = [[r[0], r[1], r[2], *map(_floats, r[3:])] for r in page_slices]
+        assert [w[:3] for w in want] == [g[:3] for g in got]
+        assert all(_same(a, b) for w, g in zip(want, got) for a, b in zip(w[3:], g[3:]))
+    assert [] == problems

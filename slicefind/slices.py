@@ -216,6 +216,7 @@ def find_slices(
     clusters: str = "both",
     cluster_options: Mapping[str, Any] | None = None,
     merge_jaccard: float = 0.8,
+    client=None,
 ) -> FoundSlices:
     """Find groups of rows where the model errs more often than on the rest.
 
@@ -226,8 +227,10 @@ def find_slices(
 
     Parameters
     ----------
-    data : pandas.DataFrame
-        The eval table: one row per dev example. Never modified.
+    data : pandas.DataFrame or dask.dataframe.DataFrame
+        The eval table: one row per dev example. Never modified. A Dask DataFrame is
+        mined partition by partition on a Dask cluster (label, prediction, errors and
+        loss must then be column names).
     label, prediction : str or array-like, optional
         Column names or arrays; a row is an error when they differ.
     errors : str or array-like, optional
@@ -268,6 +271,9 @@ def find_slices(
     merge_jaccard : float, default=0.8
         Slices whose rows overlap at least this much (Jaccard) are one entry; the
         others are listed as its aliases, and a rule is preferred as the main entry.
+    client : distributed.Client, optional
+        With a Dask DataFrame as ``data``: the cluster to count on (default the current
+        client, or a local cluster of 2 worker processes). See `slicefind.distributed`.
 
     Returns
     -------
@@ -283,30 +289,59 @@ def find_slices(
     >>> print(found.table.loc[0, "description"])
     scanner = S3 and shift = night
     """
-    table = build_eval_table(data, label=label, prediction=prediction, errors=errors, loss=loss,
-                             threshold=threshold, embeddings=embeddings, exclude=exclude,
-                             error_kind=error_kind, positive=positive, true_class=true_class,
-                             id_column=id_column)
-    max_terms, min_rows, min_errors = _check_params(table.n_rows, max_terms, min_rows, min_errors,
+    max_terms, min_rows, min_errors = _check_params(None, max_terms, min_rows, min_errors,
                                                     fdr, confidence_level, engine, clusters,
                                                     merge_jaccard)
     if isinstance(n_bins, bool) or not isinstance(n_bins, (int, np.integer)) or n_bins < 1:
         raise SlicefindValueError(f"n_bins must be an integer >= 1; got {n_bins!r}.")
-    rng = np.random.default_rng(random_state)
-    n, k_total = table.n_rows, table.n_errors
-    rate = k_total / n
-    if min_rows is None:
-        min_rows = default_min_rows(n)
-    if min_errors is None:
-        min_errors = max(3, math.floor(min_rows * rate) + 1)
-    if not table.kinds and table.embeddings is None:
-        reasons = "; ".join(f"{c}: {r}" for c, r in list(table.skipped.items())[:6])
-        msg = f"no column of data can be mined and no embeddings were given ({reasons})."
-        raise SlicefindValueError(msg)
 
-    items = build_items(table, min_rows=min_rows, min_errors=min_errors, n_bins=n_bins)
-    counts = search_rules(items, max_terms=max_terms, min_rows=min_rows, min_errors=min_errors,
-                          n_errors=k_total, engine=engine)
+    def rows_for(n_rows: int) -> int:
+        return default_min_rows(n_rows) if min_rows is None else min_rows
+
+    def errors_for(n_rows: int, n_errors: int, at_least: int) -> int:
+        if min_errors is not None:
+            return min_errors
+        return max(3, math.floor(at_least * n_errors / n_rows) + 1)
+
+    from slicefind.distributed import is_dask_frame
+
+    if is_dask_frame(data):
+        unsupported = [name for name, value, default in (
+            ("embeddings", embeddings, None), ("error_kind", error_kind, "all"),
+            ("true_class", true_class, None), ("positive", positive, None)) if value != default]
+        if unsupported or engine != "bitset":
+            names = unsupported + (["engine"] if engine != "bitset" else [])
+            msg = (f"with a Dask DataFrame, {', '.join(names)} cannot be used yet; compute() a "
+                   "sample into pandas for those, or leave them at their defaults.")
+            raise SlicefindValueError(msg)
+        from slicefind.distributed import mine_dask
+
+        mined = mine_dask(data, label=label, prediction=prediction, errors=errors, loss=loss,
+                          threshold=threshold, exclude=tuple(exclude), id_column=id_column,
+                          client=client, min_rows_for=rows_for, min_errors_for=errors_for,
+                          n_bins=n_bins, max_terms=max_terms, random_state=random_state)
+        table, items, counts = mined.table, mined.items, mined.counts
+        n, k_total = table.n_rows, table.n_errors
+        min_rows, min_errors = rows_for(n), errors_for(n, k_total, rows_for(n))
+        rule_bitset = mined.rule_bitset
+    else:
+        table = build_eval_table(data, label=label, prediction=prediction, errors=errors, loss=loss,
+                                 threshold=threshold, embeddings=embeddings, exclude=exclude,
+                                 error_kind=error_kind, positive=positive, true_class=true_class,
+                                 id_column=id_column)
+        n, k_total = table.n_rows, table.n_errors
+        min_rows, min_errors = rows_for(n), errors_for(n, k_total, rows_for(n))
+        if not table.kinds and table.embeddings is None:
+            reasons = "; ".join(f"{c}: {r}" for c, r in list(table.skipped.items())[:6])
+            msg = f"no column of data can be mined and no embeddings were given ({reasons})."
+            raise SlicefindValueError(msg)
+        items = build_items(table, min_rows=min_rows, min_errors=min_errors, n_bins=n_bins)
+        counts = search_rules(items, max_terms=max_terms, min_rows=min_rows, min_errors=min_errors,
+                              n_errors=k_total, engine=engine)
+
+        def rule_bitset(terms: np.ndarray) -> np.ndarray:
+            return rule_bits(items.bits, np.asarray(terms)[None, :])[0]
+
     where, text = _rule_candidates(items, counts)
     n_rules = len(where)
     rule_rows = np.concatenate(counts.n_rows) if n_rules else np.zeros(0, np.int64)
@@ -370,7 +405,7 @@ def find_slices(
     def bits_of(idx: int) -> np.ndarray:
         if idx < n_rules:
             width, i = where[idx]
-            return rule_bits(items.bits, counts.levels[width][i:i + 1])[0]
+            return rule_bitset(counts.levels[width][i])
         mask = np.zeros(n, dtype=bool)
         mask[extra_slices[idx - n_rules].rows] = True
         return bitset.pack(mask)[0]

@@ -170,11 +170,24 @@ def _check_hashable(data: pd.DataFrame, column) -> None:
 
 def _column_kind(series: pd.Series, n_rows: int) -> tuple[str | None, str]:
     """Infer how a column is mined: (kind, '') or (None, reason it is skipped)."""
-    dtype = series.dtype
     n_distinct = int(series.nunique(dropna=True))
+    integral = True
+    if pd.api.types.is_float_dtype(series.dtype) and n_distinct <= MAX_INT_LEVELS:
+        values = series.dropna().to_numpy()
+        integral = bool(np.all(values == np.round(values)))
+    return column_kind(series.dtype, n_distinct, bool(series.isna().any()), integral)
+
+
+def column_kind(dtype, n_distinct: int, has_missing: bool, integral: bool = True):
+    """How a column with these properties is mined: (kind, '') or (None, why it is skipped).
+
+    `integral` says whether a float column's values are all whole numbers (only read
+    when it has at most `MAX_INT_LEVELS` distinct values). Shared by every engine, so a
+    column gets the same kind however the table is held.
+    """
     if n_distinct == 0:
         return None, "all values missing"
-    if n_distinct == 1 and not series.isna().any():
+    if n_distinct == 1 and not has_missing:
         return None, "a single value"
     if pd.api.types.is_bool_dtype(dtype) or isinstance(dtype, pd.CategoricalDtype):
         return CATEGORICAL, ""
@@ -185,18 +198,12 @@ def _column_kind(series: pd.Series, n_rows: int) -> tuple[str | None, str]:
     if pd.api.types.is_integer_dtype(dtype):
         return (CATEGORICAL if n_distinct <= MAX_INT_LEVELS else NUMERIC), ""
     if pd.api.types.is_float_dtype(dtype):
-        values = series.dropna().to_numpy()
-        if n_distinct <= MAX_INT_LEVELS and np.all(values == np.round(values)):
+        if n_distinct <= MAX_INT_LEVELS and integral:
             return CATEGORICAL, ""      # small integer codes stored as float (NaN forced it)
         return NUMERIC, ""
-    # strings and mixed objects
-    if n_distinct > MAX_STRING_LEVELS:
+    if n_distinct > MAX_STRING_LEVELS:   # strings and mixed objects
         return None, (f"{n_distinct:,} distinct values (ids, paths and free text are not "
                       "mined; describe text with text_column=)")
-    non_missing = series.dropna()
-    if len(non_missing) and pd.api.types.infer_dtype(non_missing, skipna=True) in (
-            "boolean", "integer", "floating", "mixed-integer-float", "decimal"):
-        return CATEGORICAL, ""
     return CATEGORICAL, ""
 
 

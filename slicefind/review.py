@@ -240,7 +240,8 @@ class _ReviewApp:
         """Read the scan, queue and artifacts; check the display options against them."""
         self.lock = threading.RLock()
         self.found = self.ws.load_found()
-        self.queue = self.ws.load_queue()          # raises, with advice, when there is none
+        self.scan_id = int(self.found.extras["scan_id"])  # the page reviews this scan, even if a newer one comes
+        self.queue = self.ws.load_queue(self.scan_id)   # raises, with advice, when there is none
         report = self._artifact("report", {}) or {}
         if not isinstance(report, Mapping):
             report = {}
@@ -273,14 +274,14 @@ class _ReviewApp:
 
     def _artifact(self, name: str, default):
         """A stored artifact of the latest scan, or `default`."""
-        return self.ws.load_artifact(name, default=default)
+        return self.ws.load_artifact(name, default=default, scan_id=self.scan_id)
 
     def _stored_categories(self) -> list[str]:
         stored = self._artifact(CATEGORIES_ARTIFACT, None) or []
         return [normalize_tag(c) for c in stored if isinstance(c, str) and normalize_tag(c)]
 
     def _store_categories(self, categories: list[str]) -> None:
-        self.ws.save_artifact(CATEGORIES_ARTIFACT, list(categories))
+        self.ws.save_artifact(CATEGORIES_ARTIFACT, list(categories), scan_id=self.scan_id)
 
     def categories(self, reviews: pd.DataFrame, names: Mapping[str, str]) -> list[str]:
         """The stored list, then tags in use and candidate names not on it (alphabetically)."""
@@ -296,7 +297,7 @@ class _ReviewApp:
             self._store_categories(listed + list(dict.fromkeys(new)))
 
     def _current_queue(self):
-        queue = self.ws.load_queue()
+        queue = self.ws.load_queue(self.scan_id)
         self.queue = queue
         return queue
 
@@ -362,7 +363,7 @@ class _ReviewApp:
         return False
 
     def _row_state(self, row: int) -> dict:
-        history = self.ws.history(row)
+        history = self.ws.history(row, scan_id=self.scan_id)
         if len(history) == 0:
             return {"reviewed": False, "tags": [], "note": "", "updated_at": None, "source": None}
         last = history.iloc[-1]
@@ -374,21 +375,29 @@ class _ReviewApp:
         """The live tally as JSON: categories, slices, summary, and any warning."""
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always")
-            result = self.ws.tally()
+            result = self.ws.tally(scan_id=self.scan_id)
         summary = {k: _clean(v) for k, v in result.summary.items()}
+        notes = [str(w.message) for w in caught]
+        latest = self._latest_scan()
+        if latest != self.scan_id:
+            notes.append(f"The workspace now holds a newer scan ({latest}); this page still reviews "
+                         f"scan {self.scan_id}. Restart 'slicefind review' to review the new one.")
         return {"categories": _records(result.categories), "slices": _records(result.slices),
-                "summary": summary, "warnings": [str(w.message) for w in caught]}
+                "summary": summary, "warnings": notes}
+
+    def _latest_scan(self) -> int:
+        return int(self.ws.scans()["scan_id"].max())
 
     def _current(self) -> tuple[pd.DataFrame, dict, list[str], str]:
         """Reviews, names, categories and their version, read once."""
-        reviews = self.ws.reviews()
-        names = self.ws.names()
+        reviews = self.ws.reviews(self.scan_id)
+        names = self.ws.names(self.scan_id)
         categories = self.categories(reviews, names)
         digest = hashlib.sha256()
         digest.update(json.dumps([reviews["row"].tolist(), reviews["updated_at"].tolist(),
                                   reviews["tags"].tolist(), reviews["note"].tolist()]).encode())
         digest.update(json.dumps([sorted(names.items()), categories]).encode())
-        digest.update(str(len(self._current_queue())).encode())
+        digest.update(f"{len(self._current_queue())} {self._latest_scan()}".encode())
         return reviews, names, categories, digest.hexdigest()[:16]
 
     def version(self) -> str:
@@ -509,7 +518,7 @@ class _ReviewApp:
             new_note = state["note"] if note is None else note
             try:
                 self.ws.record_review(row, reviewed=bool(new_reviewed), tags=sorted(current),
-                                      note=new_note, source=SOURCE)
+                                      note=new_note, source=SOURCE, scan_id=self.scan_id)
             except SlicefindError as exc:
                 raise _HTTPError(400, str(exc)) from None
             self._remember(sorted(current))
@@ -528,7 +537,7 @@ class _ReviewApp:
         name = self._category_name(body.get("name"), "name")
         with self.lock:
             try:
-                self.ws.set_name(sid, name, source=SOURCE)
+                self.ws.set_name(sid, name, source=SOURCE, scan_id=self.scan_id)
             except SlicefindError as exc:
                 raise _HTTPError(400, str(exc)) from None
             return self._after_write()
@@ -547,9 +556,9 @@ class _ReviewApp:
         with self.lock:
             listed = self._stored_categories()
             if remove:
-                reviews = self.ws.reviews()
+                reviews = self.ws.reviews(self.scan_id)
                 in_use = any(name in _tags_list(t) for t in reviews["tags"])
-                if in_use or name in self.ws.names().values():
+                if in_use or name in self.ws.names(self.scan_id).values():
                     raise _HTTPError(409, f"category {name!r} is in use; untag its rows (or rename "
                                           "the candidate) before removing it.")
                 if name in listed:
@@ -567,10 +576,11 @@ class _ReviewApp:
                 handle.write(data)
             with self.lock:
                 try:
-                    counts = self.ws.import_sheet(path, source=f"{SOURCE}:import:{filename}")
+                    counts = self.ws.import_sheet(path, source=f"{SOURCE}:import:{filename}",
+                                                  scan_id=self.scan_id)
                 except SlicefindError as exc:
                     raise _HTTPError(400, str(exc)) from None
-                reviews = self.ws.reviews()
+                reviews = self.ws.reviews(self.scan_id)
                 self._remember(t for text in reviews["tags"] for t in _tags_list(text))
                 out = self._after_write()
         finally:
@@ -584,7 +594,7 @@ class _ReviewApp:
             path = os.path.join(folder, "queue.csv")
             with self.lock:
                 queue = self._current_queue()
-                reviews = self.ws.reviews()
+                reviews = self.ws.reviews(self.scan_id)
                 reviews = reviews[reviews["row"].isin(queue.table["row"])]
                 queue.to_csv(path, reviews=reviews, overwrite=True)
             with open(path, "rb") as handle:

@@ -522,6 +522,45 @@ def test_workspace_without_queue_or_scan_is_refused(tmp_path, depot):
         review.make_server(tmp_path / "ws")
 
 
+def test_a_newer_scan_leaves_the_page_on_its_own(server, workspace, depot):
+    """When a new scan is saved while the page is open, writes still go to the page's scan, with a notice."""
+    row = _queued(workspace)
+    frame, _ = depot
+    with Workspace(workspace, create=False) as ws:
+        ws.save_scan(sf.find_slices(frame, label="digit", prediction="read_as"))
+    status, answer = _call(server, "POST", "api/review", {"row": row, "toggle": "faded print"})
+    with Workspace(workspace, create=False) as ws:
+        tags = ws.reviews(scan_id=1).set_index("row").at[row, "tags"]
+        assert (2, 0) == (int(ws.scans()["scan_id"].max()), len(ws.reviews(scan_id=2)))
+    assert (200, "faded print") == (status, tags)
+    assert "newer scan (2)" in " ".join(answer["tally"]["warnings"])
+
+
+def test_serve_prints_the_url_and_stops_on_ctrl_c(workspace):
+    """serve() prints the tokened URL, answers on it, and on Ctrl+C stops cleanly (exit 0)."""
+    import signal
+    import subprocess
+    import sys
+
+    code = "import sys; from slicefind.review import serve; serve(sys.argv[1])"
+    process = subprocess.Popen([sys.executable, "-c", code, workspace], stdout=subprocess.PIPE,
+                               stderr=subprocess.PIPE, text=True)
+    try:
+        lines = [process.stdout.readline() for _ in range(2)]
+        url = lines[1].strip()
+        with urllib.request.urlopen(url + "api/version", timeout=20) as answer:
+            status = answer.status
+        wrong = url.rsplit("/", 2)[0] + "/not-the-token/api/version"
+        with pytest.raises(urllib.error.HTTPError) as refused:
+            urllib.request.urlopen(wrong, timeout=20)
+    finally:
+        process.send_signal(signal.SIGINT)
+        out, err = process.communicate(timeout=20)
+    assert url.startswith("http://127.0.0.1:") and url.endswith("/")
+    assert (200, 403) == (status, refused.value.code)
+    assert (0, True) == (process.returncode, "every review was already saved" in out), err
+
+
 # --- the page in a browser ------------------------------------------------------------------
 
 

@@ -273,7 +273,7 @@ class _ReviewApp:
     # -- workspace access ----------------------------------------------------------------
 
     def _artifact(self, name: str, default):
-        """A stored artifact of the latest scan, or `default`."""
+        """An artifact of the page's scan, or `default`."""
         return self.ws.load_artifact(name, default=default, scan_id=self.scan_id)
 
     def _stored_categories(self) -> list[str]:

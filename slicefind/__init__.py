@@ -1,12 +1,16 @@
 """slicefind: find where a model errs, test it against chance, and tally a human review.
 
 The public API is re-exported here; heavy libraries (umap, hdbscan, numba, mlxtend,
-scikit-learn) are imported only by the functions that need them.
+scikit-learn, dask) are imported only by the functions that need them.
 """
 from importlib.metadata import PackageNotFoundError, version
 
+from slicefind.compare import Comparison, compare
+from slicefind.queue import Queue, build_queue
 from slicefind.slices import FoundSlices, find_slices
 from slicefind.table import SlicefindError, SlicefindTypeError, SlicefindValueError
+from slicefind.tally import Tally, read_reviews, tally
+from slicefind.workspace import Workspace, data_fingerprint
 
 try:
     __version__ = version("slicefind")
@@ -16,6 +20,15 @@ except PackageNotFoundError:  # running from a source tree that was not installe
 __all__ = [
     "find_slices",
     "FoundSlices",
+    "build_queue",
+    "Queue",
+    "tally",
+    "Tally",
+    "read_reviews",
+    "compare",
+    "Comparison",
+    "Workspace",
+    "data_fingerprint",
     "SlicefindError",
     "SlicefindValueError",
     "SlicefindTypeError",

@@ -499,6 +499,7 @@ def _select(order, bits_of, n_rows, n_rules, error_bits, total_rows, total_error
     aliases: dict[int, list[str]] = {}
     folded: dict[int, list[str]] = {}
     explained: dict[int, list[int]] = {}
+    successor: dict[int, int] = {}          # a kept slice replaced by a sharper or a rule
 
     def count(bits):
         return int(np.bitwise_count(bits).sum()), int(np.bitwise_count(bits & error_bits).sum())
@@ -517,6 +518,7 @@ def _select(order, bits_of, n_rows, n_rules, error_bits, total_rows, total_error
                 kept[twin], kept_bits[twin] = idx, bits
                 aliases[idx] = [descriptions[j]] + aliases.pop(j)
                 folded[idx] = folded.pop(j)
+                successor[j] = idx
             else:
                 aliases[j].append(descriptions[idx])
             continue
@@ -532,6 +534,7 @@ def _select(order, bits_of, n_rows, n_rules, error_bits, total_rows, total_error
             j = kept[sharper]
             kept[sharper], kept_bits[sharper] = idx, bits
             folded[idx] = [descriptions[j]] + aliases.pop(j) + folded.pop(j)
+            successor[j] = idx
             aliases[idx] = []
             union = np.bitwise_or.reduce(np.stack(kept_bits), axis=0)
             union_rows, union_errors = count(union)
@@ -550,4 +553,11 @@ def _select(order, bits_of, n_rows, n_rules, error_bits, total_rows, total_error
         folded[idx] = []
         union |= bits
         union_rows, union_errors = count(union)
+
+    def final(j):
+        while j in successor:
+            j = successor[j]
+        return j
+
+    explained = {idx: sorted({final(j) for j in by}, key=kept.index) for idx, by in explained.items()}
     return kept, kept_bits, aliases, folded, explained

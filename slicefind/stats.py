@@ -7,7 +7,7 @@ here too, next to the methods they share.
 from __future__ import annotations
 
 import numpy as np
-from scipy import special, stats
+from scipy import special
 
 __all__ = [
     "z_value",
@@ -29,7 +29,7 @@ __all__ = [
 
 def z_value(confidence_level: float = 0.95) -> float:
     """Two-sided normal quantile, e.g. 1.959964 for 0.95."""
-    return float(stats.norm.ppf(0.5 + confidence_level / 2.0))
+    return float(special.ndtri(0.5 + confidence_level / 2.0))
 
 
 def wilson_interval(k, n, *, confidence_level: float = 0.95):
@@ -672,11 +672,11 @@ def mcnemar_exact(b, c, *, alternative: str = "two-sided"):
     n = b + c
     if alternative == "two-sided":
         # McNemar (1947), exact form: p = min(1, 2 P(X <= min(b, c))), X ~ Bin(b + c, 1/2)
-        p = np.minimum(1.0, 2.0 * stats.binom.cdf(np.minimum(b, c), n, 0.5))
+        p = np.minimum(1.0, 2.0 * special.bdtr(np.minimum(b, c), n.astype(np.int64), 0.5))
         p = np.where(b == c, 1.0, p)
     elif alternative == "less":
-        p = stats.binom.cdf(b, n, 0.5)                     # P(X <= b)
+        p = special.bdtr(b, n.astype(np.int64), 0.5)                      # P(X <= b)
     else:
-        p = stats.binom.sf(b - 1.0, n, 0.5)                # P(X >= b)
+        p = special.bdtrc(b - 1.0, n.astype(np.int64), 0.5)                # P(X >= b)
     p = np.where(n == 0, 1.0, np.clip(p, 0.0, 1.0))
     return float(p) if scalar else p

@@ -1,0 +1,549 @@
+"""The ``slicefind`` command line: scan, queue, tally, report, demo.
+
+Every command works on a *workspace*: a folder holding ``slicefind.sqlite`` (scans,
+queue, reviews, names) and the files written for people (``slices.csv``,
+``queue.csv``, ``tally.csv``, ``report.html``). Errors print one line,
+``slicefind: error: <message>``, and exit 1 (``--debug`` shows the traceback); usage
+errors exit 2.
+"""
+from __future__ import annotations
+
+import argparse
+import os
+import sys
+import time
+from typing import Sequence
+
+import numpy as np
+import pandas as pd
+
+__all__ = ["main", "build_parser"]
+
+EXAMPLES = {
+    "scan": """examples:
+  slicefind scan dev.csv --label label --prediction pred --out ws
+  slicefind scan dev.parquet --errors is_wrong --exclude example_id --out ws
+  slicefind scan dev.csv --label y --prediction p --embeddings emb.npy --id-column parcel_id --out ws
+  slicefind scan scores.csv --loss loss --threshold 0.7 --out ws""",
+    "queue": """examples:
+  slicefind queue ws                      # 100 errors, 20 of them from no slice
+  slicefind queue ws --budget 200 --rest 40
+  slicefind queue ws --extend 50          # 50 more, continuing the same order""",
+    "tally": """examples:
+  slicefind tally ws ws/queue.csv
+  slicefind tally ws reviewed.csv --name R1="smeared ink" --name C2="tape over label\"""",
+    "compare": """examples:
+  slicefind compare ws --after new_predictions.csv
+  slicefind compare ws --after new.parquet --data dev.csv     # also scan the new errors
+  slicefind compare ws --after new.csv --id-column parcel_id --prediction-column read_v2""",
+    "review": """examples:
+  slicefind review ws                     # prints http://127.0.0.1:PORT/TOKEN/
+  slicefind review ws --open
+  slicefind review ws --images crops.npy --port 8765""",
+    "report": """examples:
+  slicefind report ws
+  slicefind report ws --out /tmp/report.html""",
+    "demo": """examples:
+  slicefind demo                          # writes ./slicefind-demo
+  slicefind demo --out /tmp/depot""",
+}
+
+
+class _Step:
+    """Prints '[k/n] what ... 1.2 s' around a step of a long command."""
+
+    def __init__(self, total: int, quiet: bool = False):
+        self.total, self.k, self.quiet = total, 0, quiet
+
+    def __call__(self, what: str):
+        self.k += 1
+        step = self
+
+        class _Ctx:
+            def __enter__(self_inner):
+                self_inner.start = time.perf_counter()
+                if not step.quiet:
+                    print(f"[{step.k}/{step.total}] {what} ...", end="", flush=True)
+                return self_inner
+
+            def __exit__(self_inner, kind, value, tb):
+                if not step.quiet:
+                    end = " failed\n" if kind else f" {time.perf_counter() - self_inner.start:.1f} s\n"
+                    print(end, end="", flush=True)
+        return _Ctx()
+
+
+def _read_table(path: str) -> pd.DataFrame:
+    """A CSV or Parquet file as a DataFrame, or a clear error."""
+    from slicefind.table import SlicefindValueError
+
+    if not os.path.exists(path):
+        raise SlicefindValueError(f"DATA file {path!r} does not exist.")
+    lower = path.lower()
+    if lower.endswith((".parquet", ".pq")):
+        return pd.read_parquet(path)
+    if lower.endswith((".csv", ".csv.gz", ".tsv", ".txt")):
+        return pd.read_csv(path, sep="\t" if lower.endswith(".tsv") else ",")
+    raise SlicefindValueError(f"DATA file {path!r} must be .csv, .tsv or .parquet.")
+
+
+def _read_embeddings(path: str, id_column: str | None, frame: pd.DataFrame) -> np.ndarray:
+    """Embeddings from .npy, or from a Parquet/CSV file of numeric vector columns."""
+    from slicefind.table import SlicefindValueError
+
+    if not os.path.exists(path):
+        raise SlicefindValueError(f"--embeddings file {path!r} does not exist.")
+    if path.lower().endswith(".npy"):
+        return np.load(path, allow_pickle=False)
+    vectors = _read_table(path)
+    if id_column and id_column in vectors.columns and id_column in frame.columns:
+        order = pd.Index(vectors[id_column]).get_indexer(frame[id_column])
+        if (order < 0).any():
+            missing = frame[id_column].iloc[int(np.flatnonzero(order < 0)[0])]
+            raise SlicefindValueError(f"--embeddings file has no vector for {id_column} = {missing!r}.")
+        vectors = vectors.iloc[order].drop(columns=[id_column])
+    numeric = vectors.select_dtypes("number")
+    if numeric.shape[1] == 0:
+        raise SlicefindValueError(f"--embeddings file {path!r} has no numeric columns.")
+    return numeric.to_numpy(dtype=np.float64)
+
+
+def _coerce_like(value: str | None, column: pd.Series):
+    """A command-line value converted to the type of a label column's values."""
+    if value is None:
+        return None
+    if pd.api.types.is_bool_dtype(column.dtype):
+        return value.strip().lower() in ("1", "true", "yes")
+    if pd.api.types.is_integer_dtype(column.dtype):
+        try:
+            return int(value)
+        except ValueError:
+            return value
+    if pd.api.types.is_float_dtype(column.dtype):
+        try:
+            return float(value)
+        except ValueError:
+            return value
+    return value
+
+
+def _print_slices(table: pd.DataFrame, n: int) -> None:
+    """The top slices as a terminal table."""
+    if len(table) == 0:
+        print("No slice passes the false discovery rate.")
+        return
+    shown = table.head(n)
+    width = min(70, max(len("description"), int(shown["description"].str.len().max())))
+    print(f"{'id':<5} {'description':<{width}} {'rows':>8} {'errors':>7} {'rate [95% interval]':>22} "
+          f"{'share':>6} {'q':>8}")
+    for _, s in shown.iterrows():
+        desc = str(s["description"])
+        desc = desc if len(desc) <= width else desc[:width - 1] + "…"
+        interval = f"{s['error_rate']:.1%} [{s['ci_low']:.1%}–{s['ci_high']:.1%}]"
+        print(f"{s['slice_id']:<5} {desc:<{width}} {int(s['n_rows']):>8,} {int(s['n_errors']):>7,} "
+              f"{interval:>22} {s['error_share']:>6.1%} {s['q_value']:>8.2g}")
+    if len(table) > n:
+        print(f"... {len(table) - n} more in slices.csv")
+
+
+def _report_inputs(ws, found, *, tally_result=None, simulated=False):
+    """Gather what the report shows from the workspace's stored artifacts."""
+    from slicefind.report import ReportInputs
+
+    artifacts = ws.load_artifact("report", default={}) or {}
+    descriptions = ws.load_artifact("descriptions", default={}) or {}
+    images = None
+    image_file = artifacts.get("images")
+    if image_file and os.path.exists(image_file):
+        images = np.load(image_file, allow_pickle=False, mmap_mode="r")
+    texts = paths = None
+    frame = found.eval_table.data
+    by_position = pd.Series(range(len(frame)), index=found.eval_table.positions)
+    n_input = found.eval_table.n_input_rows
+    for kind in ("image_column", "text_column"):
+        column = artifacts.get(kind)
+        if column and column in frame.columns:
+            values = [""] * n_input
+            for pos, value in zip(found.eval_table.positions, frame[column].tolist()):
+                values[int(pos)] = value
+            if kind == "image_column":
+                base = artifacts.get("data_folder") or ""
+                paths = [v if os.path.isabs(str(v)) else os.path.join(base, str(v)) for v in values]
+            else:
+                texts = values
+    del by_position
+    map_xy = ws.load_artifact("map_xy", default=None)
+    comparison = None
+    stored = ws.load_artifact("compare", default=None)
+    if stored:
+        from slicefind.compare import Comparison
+
+        comparison = Comparison.from_dict(stored)
+        if comparison.params.get("scan_id") != found.extras.get("scan_id"):
+            comparison = None                      # made against an earlier scan
+    return ReportInputs(map_xy=map_xy, descriptions=descriptions, images=images, image_paths=paths,
+                        texts=texts, tally=tally_result, simulated_review=simulated or bool(
+                            artifacts.get("simulated_review")), notes=artifacts.get("notes", ()),
+                        compare=comparison)
+
+
+def _write_report(ws, found, out=None, *, tally_result=None, simulated=False) -> str:
+    from slicefind.report import write_report
+
+    if tally_result is None and len(ws.reviews()):
+        tally_result = ws.tally()
+    path = out or os.path.join(ws.path, "report.html")
+    return write_report(path, found, _report_inputs(ws, found, tally_result=tally_result,
+                                                    simulated=simulated))
+
+
+def _describe_top(found, text_column=None, n=8):
+    """SliceDescriptions of the top slices, for the report and the review page."""
+    from slicefind.describe import describe_slice
+
+    return {sid: describe_slice(found, sid, text_column=text_column)
+            for sid in found.table["slice_id"].head(n)}
+
+
+def _scan(found_kwargs, frame, ws_path, *, show=(), images=None, image_column=None,
+          text_column=None, data_folder=None, notes=(), step=None, top=10, quiet=False):
+    """Run find_slices, store the scan and what the report needs, write slices.csv."""
+    import slicefind as sf
+    from slicefind.workspace import Workspace, data_fingerprint
+
+    step = step or _Step(3, quiet)
+    with step("finding slices (rules" + (" and embedding clusters)" if found_kwargs.get("embeddings") is not None else ")")):
+        found = sf.find_slices(frame, **found_kwargs)
+    with step("saving the scan"):
+        ws = Workspace(ws_path)
+        pointer = tuple(dict.fromkeys([c for c in (*show, image_column, text_column) if c]))
+        ws.save_scan(found, data_fingerprint=data_fingerprint(frame), show=pointer)
+        clusters = found.extras.get("clusters")
+        map_xy = getattr(clusters, "map_xy", None)
+        if map_xy is not None:
+            ws.save_artifact("map_xy", np.asarray(map_xy, dtype=np.float32))
+        ws.save_artifact("descriptions", _describe_top(found, text_column))
+        ws.save_artifact("report", {"images": images, "image_column": image_column,
+                                    "text_column": text_column, "data_folder": data_folder,
+                                    "notes": list(notes)})
+        found.table.to_csv(os.path.join(ws_path, "slices.csv"), index=False)
+    if not quiet:
+        print(f"{found.n_rows:,} rows, {found.n_errors:,} errors ({found.error_rate:.2%}); "
+              f"{len(found.table)} slices pass FDR {found.params['fdr']} of {len(found.tested):,} tested.")
+        _print_slices(found.table, top)
+        if found.eval_table.skipped:
+            skipped = ", ".join(f"{c} ({r})" for c, r in list(found.eval_table.skipped.items())[:6])
+            print(f"not mined: {skipped}")
+    return ws, found
+
+
+def cmd_scan(args) -> int:
+    frame = _read_table(args.data)
+    emb = _read_embeddings(args.embeddings, args.id_column, frame) if args.embeddings else None
+    label_col = frame[args.label] if args.label in frame.columns else pd.Series(dtype=object)
+    kwargs = dict(label=args.label, prediction=args.prediction, errors=args.errors, loss=args.loss,
+                  threshold=args.threshold, embeddings=emb, exclude=tuple(args.exclude),
+                  max_terms=args.max_terms, min_rows=args.min_rows, fdr=args.fdr,
+                  random_state=args.seed, error_kind=args.error_kind,
+                  positive=_coerce_like(args.positive, label_col),
+                  true_class=_coerce_like(args.true_class, label_col),
+                  id_column=args.id_column, clusters=args.clusters, engine=args.engine)
+    images = os.path.abspath(args.images) if args.images else None
+    _scan(kwargs, frame, args.out, show=tuple(args.show), images=images,
+          image_column=args.image_column, text_column=args.text_column,
+          data_folder=os.path.dirname(os.path.abspath(args.data)), top=args.top)
+    print(f"workspace: {args.out} (slices.csv); next: slicefind queue {args.out}")
+    return 0
+
+
+def cmd_queue(args) -> int:
+    import slicefind as sf
+    from slicefind.workspace import Workspace
+
+    ws = Workspace(args.workspace, create=False)
+    found = ws.load_found()
+    path = os.path.join(ws.path, "queue.csv")
+    if args.extend:
+        queue = ws.load_queue().extend(args.extend)
+        ws.save_queue(queue, replace=True)
+    else:
+        queue = sf.build_queue(found, budget=args.budget, rest=args.rest, top=args.top,
+                               random_state=args.seed, show=ws.stored_columns())
+        ws.save_queue(queue, replace=args.force)
+    queue.to_csv(path, reviews=ws.reviews(), overwrite=True)
+    print(f"queue: {len(queue)} errors in {len(queue.strata)} strata -> {path}")
+    print(queue.strata[["stratum", "n_errors", "n_queued", "description"]].to_string(index=False))
+    print(f"fill in 'reviewed' and 'tags' (several as a;b), then: slicefind tally {args.workspace} {path}")
+    return 0
+
+
+def _parse_names(pairs: Sequence[str]) -> dict[str, str]:
+    from slicefind.table import SlicefindValueError
+
+    names = {}
+    for pair in pairs:
+        if "=" not in pair:
+            raise SlicefindValueError(f"--name {pair!r} must look like R1=\"smeared ink\".")
+        key, value = pair.split("=", 1)
+        names[key.strip()] = value.strip().strip('"').strip("'")
+    return names
+
+
+def _print_tally(result) -> None:
+    cats = result.categories
+    print(f"{'category':<28} {'tagged':>6} {'share of errors [95%]':>26} {'error rate if fixed':>20}")
+    for _, c in cats.iterrows():
+        share = f"{c['share']:.1%} [{c['share_low']:.1%}–{c['share_high']:.1%}]"
+        print(f"{str(c['category'])[:28]:<28} {int(c['n_tagged']):>6} {share:>26} {c['headroom']:>20.2%}")
+    if len(result.slices):
+        print()
+        print(f"{'slice':<6} {'name':<24} {'reviewed':>8} {'precision [95%]':>22} {'verdict':>10} {'more':>5}")
+        for _, s in result.slices.iterrows():
+            prec = ("" if pd.isna(s["precision"]) else
+                    f"{s['precision']:.0%} [{s['precision_low']:.0%}–{s['precision_high']:.0%}]")
+            more = "" if pd.isna(s["more_needed"]) else str(int(s["more_needed"]))
+            print(f"{s['slice_id']:<6} {str(s['name'])[:24]:<24} {int(s['n_reviewed']):>8} {prec:>22} "
+                  f"{s['verdict']:>10} {more:>5}")
+
+
+def cmd_tally(args) -> int:
+    from slicefind.workspace import Workspace
+
+    ws = Workspace(args.workspace, create=False)
+    counts = ws.import_sheet(args.reviewed)
+    for slice_id, name in _parse_names(args.name).items():
+        ws.set_name(slice_id, name, source="cli")
+    result = ws.tally(threshold=args.threshold)
+    result.categories.to_csv(os.path.join(ws.path, "tally.csv"), index=False)
+    result.slices.to_csv(os.path.join(ws.path, "verdicts.csv"), index=False)
+    print(f"imported {counts['recorded']} new review events ({counts['unchanged']} unchanged, "
+          f"{counts['blank']} blank lines)")
+    _print_tally(result)
+    report = _write_report(ws, ws.load_found(), tally_result=result)
+    print(f"tally.csv, verdicts.csv and {report} written")
+    return 0
+
+
+def cmd_compare(args) -> int:
+    from slicefind.compare import format_comparison, run_compare
+    from slicefind.workspace import Workspace
+
+    result = run_compare(args.workspace, args.after, data_path=args.data, id_column=args.id_column,
+                         prediction_column=args.prediction_column)
+    print(format_comparison(result, top=args.top))
+    ws = Workspace(args.workspace, create=False)
+    ws.save_artifact("compare", result.to_dict())
+    report = _write_report(ws, ws.load_found())
+    print(f"{', '.join(result.params['written'])} and {report} written")
+    return 0
+
+
+def cmd_review(args) -> int:
+    from slicefind.review import serve
+
+    serve(args.workspace, port=args.port, open_browser=args.open, images=args.images,
+          image_column=args.image_column, text_column=args.text_column,
+          image_folders=tuple(args.image_folder))
+    return 0
+
+
+def cmd_report(args) -> int:
+    from slicefind.workspace import Workspace
+
+    ws = Workspace(args.workspace, create=False)
+    path = _write_report(ws, ws.load_found(), args.out)
+    print(f"report: {path}")
+    return 0
+
+
+def _simulated_reviews(queue, depot) -> pd.DataFrame:
+    """The demo's SIMULATED reviewer: tags each queued error with the planted degradations
+    that touched it (ground truth the real world never gives); other errors stay untagged."""
+    membership = {}
+    for name, planted in depot.planted.items():
+        for row in planted.rows.tolist():
+            membership.setdefault(int(row), []).append(name)
+    rows = queue.table["row"].astype(int).tolist()
+    return pd.DataFrame({"row": rows, "reviewed": 1,
+                         "tags": [";".join(sorted(membership.get(r, []))) for r in rows],
+                         "note": "simulated reviewer"})
+
+
+def cmd_demo(args) -> int:
+    import slicefind as sf
+    from slicefind.demodata import make_depot
+    from slicefind.tally import normalize_tag
+
+    out = args.out
+    os.makedirs(out, exist_ok=True)
+    start = time.perf_counter()
+    step = _Step(7)
+    with step(f"building the demo dev set ({args.rows:,} parcels read by a digit classifier)"):
+        depot = make_depot(args.rows, random_state=args.seed)
+        data_path = os.path.join(out, "depot.csv")
+        depot.frame.to_csv(data_path, index=False)
+        np.save(os.path.join(out, "embeddings.npy"), depot.embeddings)
+        np.save(os.path.join(out, "images.npy"), depot.images.astype(np.float32))
+    ws_path = os.path.join(out, "workspace")
+    if os.path.exists(os.path.join(ws_path, "slicefind.sqlite")):
+        os.remove(os.path.join(ws_path, "slicefind.sqlite"))
+        for suffix in ("-wal", "-shm"):
+            if os.path.exists(os.path.join(ws_path, "slicefind.sqlite" + suffix)):
+                os.remove(os.path.join(ws_path, "slicefind.sqlite" + suffix))
+    kwargs = dict(label="label", prediction="pred", embeddings=depot.embeddings,
+                  id_column="parcel_id", random_state=args.seed)
+    notes = ("Demo data: a parcel depot reading handwritten digits (scikit-learn's bundled digits, "
+             "augmented and degraded on purpose). Planted: "
+             + "; ".join(f"{p.name} ({p.rows.size} rows, recorded in "
+                         f"{', '.join(p.columns) if p.columns else 'no column'})"
+                         for p in depot.planted.values()),)
+    ws, found = _scan(kwargs, depot.frame, ws_path, images=os.path.abspath(os.path.join(out, "images.npy")),
+                      notes=notes, step=step)
+    with step("drawing the review queue (100 errors)"):
+        queue = sf.build_queue(found, budget=100, rest=20, random_state=args.seed)
+        ws.save_queue(queue)
+        queue.to_csv(os.path.join(ws_path, "queue.csv"), overwrite=True)
+    with step("SIMULATED reviewer tags the queue from the planted ground truth"):
+        sheet = _simulated_reviews(queue, depot)
+        sheet_path = os.path.join(out, "reviewed_simulated.csv")
+        sheet.to_csv(sheet_path, index=False)
+        ws.import_sheet(sheet_path, source="simulated reviewer")
+        by_stratum = queue.table.set_index("row")["stratum"]
+        for stratum, group in sheet.assign(stratum=sheet["row"].map(by_stratum)).groupby("stratum"):
+            tags = [t for cell in group["tags"] for t in cell.split(";") if t]
+            if stratum != "rest" and tags:
+                ws.set_name(stratum, normalize_tag(pd.Series(tags).mode().iloc[0]), source="simulated reviewer")
+    with step("tally and report"):
+        result = ws.tally()
+        result.categories.to_csv(os.path.join(ws_path, "tally.csv"), index=False)
+        result.slices.to_csv(os.path.join(ws_path, "verdicts.csv"), index=False)
+        ws.save_artifact("report", {**ws.load_artifact("report", default={}), "simulated_review": True})
+        report = _write_report(ws, found, tally_result=result, simulated=True)
+    print()
+    print("Tally from the SIMULATED reviewer (demo only):")
+    _print_tally(result)
+    print(f"\ndemo finished in {time.perf_counter() - start:.1f} s; report: {os.path.abspath(report)}")
+    return 0
+
+
+def _add_scan_options(p):
+    p.add_argument("data", help="the eval table (.csv or .parquet), one row per dev example")
+    p.add_argument("--out", required=True, metavar="WORKSPACE", help="workspace folder to write")
+    how = p.add_argument_group("which rows are errors (one of)")
+    how.add_argument("--label", help="true label column")
+    how.add_argument("--prediction", help="predicted label column (with --label)")
+    how.add_argument("--errors", help="boolean/0-1 column, true for an error")
+    how.add_argument("--loss", help="per-row loss column (with --threshold)")
+    how.add_argument("--threshold", type=float, help="a row is an error when loss > threshold")
+    p.add_argument("--error-kind", default="all", choices=("all", "false_positive", "false_negative"))
+    p.add_argument("--positive", help="the positive class for --error-kind")
+    p.add_argument("--true-class", help="explain only errors on rows of this true class")
+    p.add_argument("--embeddings", metavar="FILE", help="(n, d) vectors: .npy, or .parquet/.csv of numeric columns")
+    p.add_argument("--exclude", nargs="*", default=[], metavar="COL", help="columns never mined")
+    p.add_argument("--id-column", metavar="COL", help="the column identifying examples")
+    p.add_argument("--show", nargs="*", default=[], metavar="COL", help="columns to carry onto the review sheet")
+    p.add_argument("--images", metavar="FILE.npy", help="pixel arrays (n, h, w) for thumbnails")
+    p.add_argument("--image-column", metavar="COL", help="column of image file paths for thumbnails")
+    p.add_argument("--text-column", metavar="COL", help="free-text column to show and describe")
+    p.add_argument("--max-terms", type=int, default=3, help="most conditions per rule (default 3)")
+    p.add_argument("--min-rows", type=int, default=None, help="fewest rows per slice (default max(20, 0.5%%))")
+    p.add_argument("--fdr", type=float, default=0.05, help="false discovery rate (default 0.05)")
+    p.add_argument("--clusters", default="both", choices=("both", "regions", "error_modes", "none"))
+    p.add_argument("--engine", default="bitset", choices=("bitset", "mlxtend"))
+    p.add_argument("--seed", type=int, default=0, help="random_state (default 0)")
+    p.add_argument("--top", type=int, default=10, help="slices to print (default 10)")
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="slicefind", description="Find where a model errs, test it against chance, and tally a review.")
+    parser.add_argument("--debug", action="store_true", help="show tracebacks")
+    from slicefind import __version__
+    parser.add_argument("--version", action="version", version=f"slicefind {__version__}")
+    sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
+    fmt = argparse.RawDescriptionHelpFormatter
+
+    p = sub.add_parser("scan", help="find slices and write a workspace", epilog=EXAMPLES["scan"],
+                       formatter_class=fmt)
+    _add_scan_options(p)
+    p.set_defaults(func=cmd_scan)
+
+    p = sub.add_parser("queue", help="draw the review sample (WORKSPACE/queue.csv)",
+                       epilog=EXAMPLES["queue"], formatter_class=fmt)
+    p.add_argument("workspace")
+    p.add_argument("--budget", type=int, default=100, help="errors to queue (default 100)")
+    p.add_argument("--rest", type=int, default=20, help="of which from no slice (default 20)")
+    p.add_argument("--top", type=int, default=None, help="slices to queue as strata")
+    p.add_argument("--seed", type=int, default=0)
+    p.add_argument("--extend", type=int, default=0, metavar="N", help="add N more to the stored queue")
+    p.add_argument("--force", action="store_true", help="replace a stored queue")
+    p.set_defaults(func=cmd_queue)
+
+    p = sub.add_parser("tally", help="import reviews; write tally.csv, verdicts.csv, report",
+                       epilog=EXAMPLES["tally"], formatter_class=fmt)
+    p.add_argument("workspace")
+    p.add_argument("reviewed", help="the filled review sheet (CSV)")
+    p.add_argument("--name", action="append", default=[], metavar='ID="NAME"',
+                   help="name a slice's category, e.g. R1=\"smeared ink\" (repeatable)")
+    p.add_argument("--threshold", type=float, default=0.5, help="precision a verdict compares with")
+    p.set_defaults(func=cmd_tally)
+
+    p = sub.add_parser("review", help="review the queue in a local web page (127.0.0.1 only)",
+                       epilog=EXAMPLES["review"], formatter_class=fmt)
+    p.add_argument("workspace")
+    p.add_argument("--port", type=int, default=0, help="port on 127.0.0.1 (default: a free one)")
+    p.add_argument("--open", action="store_true", help="open the page in the default browser")
+    p.add_argument("--images", default=None, help=".npy of pixel arrays, one per data row (default: the scan's)")
+    p.add_argument("--image-column", default=None, help="stored column of image paths (default: the scan's)")
+    p.add_argument("--text-column", default=None, help="stored column of text to show (default: the scan's)")
+    p.add_argument("--image-folder", action="append", default=[], metavar="DIR",
+                   help="another folder image paths may point into (repeatable)")
+    p.set_defaults(func=cmd_review)
+
+    p = sub.add_parser("compare", help="before/after on the same rows: compare.csv and a report section",
+                       epilog=EXAMPLES["compare"], formatter_class=fmt)
+    p.add_argument("workspace")
+    p.add_argument("--after", required=True, metavar="FILE",
+                   help="new predictions (.csv/.parquet): the id column and one prediction column "
+                        "(error flags when the scan had no labels)")
+    p.add_argument("--data", metavar="DATA", help="the scanned data file; also scans the new errors for new slices")
+    p.add_argument("--id-column", metavar="COL", help="id column of the --after file (default: the scan's)")
+    p.add_argument("--prediction-column", metavar="COL",
+                   help="prediction column of the --after file (default: its only other column)")
+    p.add_argument("--top", type=int, default=15, help="lines to print (default 15)")
+    p.set_defaults(func=cmd_compare)
+
+    p = sub.add_parser("report", help="(re)write WORKSPACE/report.html", epilog=EXAMPLES["report"],
+                       formatter_class=fmt)
+    p.add_argument("workspace")
+    p.add_argument("--out", default=None, help="write the report here instead")
+    p.set_defaults(func=cmd_report)
+
+    p = sub.add_parser("demo", help="the whole loop on the built-in depot data", epilog=EXAMPLES["demo"],
+                       formatter_class=fmt)
+    p.add_argument("--out", default="slicefind-demo", help="folder to write (default ./slicefind-demo)")
+    p.add_argument("--rows", type=int, default=6000, help="dev-set size (default 6000)")
+    p.add_argument("--seed", type=int, default=0)
+    p.set_defaults(func=cmd_demo)
+    return parser
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    """Entry point: returns the exit code (0 ok, 1 failure, 2 usage)."""
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    try:
+        return int(args.func(args) or 0)
+    except KeyboardInterrupt:
+        print("slicefind: interrupted", file=sys.stderr)
+        return 1
+    except (ValueError, TypeError, OSError, KeyError) as error:
+        if args.debug:
+            raise
+        message = str(error) if not isinstance(error, KeyError) else f"missing {error}"
+        print(f"\nslicefind: error: {message}", file=sys.stderr)
+        return 1
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

@@ -74,6 +74,9 @@ def _profile(part: pd.DataFrame, index: int, how: dict, columns: Sequence[str], 
              sample_rows: int) -> dict:
     """Pass 1 on one partition: schema, errors, per-column distinct values, a sample."""
     schema = {c: str(part[c].dtype) for c in part.columns}
+    needed = list(columns) + [v for k, v in how.items() if k in ("label", "prediction", "errors", "loss")]
+    if any(c not in part.columns for c in needed):
+        return {"index": index, "n": len(part), "schema": schema, "incomplete": True}
     errors = _errors_of(part, how)
     out: dict[str, Any] = {"index": index, "n": len(part), "schema": schema,
                            "n_errors": int(errors.sum()), "columns": {}}
@@ -200,7 +203,7 @@ def _default_client():
 def _check_schema(profiles: list, columns: Sequence[str]) -> None:
     """Every partition has every column, with one dtype per column; else a clear error."""
     first = profiles[0]["schema"]
-    for prof in profiles[1:]:
+    for prof in profiles:
         for column in columns:
             if column not in prof["schema"]:
                 msg = (f"partition {prof['index']} has no column {column!r} (partition 0 has it); "
@@ -281,7 +284,7 @@ def mine_dask(data, *, label=None, prediction=None, errors=None, loss=None, thre
     profiles = client.gather(client.map(_profile, parts, range(len(parts)), [how] * len(parts),
                                         [candidates] * len(parts), [seed] * len(parts),
                                         [sample_rows] * len(parts), pure=False))
-    _check_schema(profiles, columns)
+    _check_schema(profiles, columns)     # before anything reads a partition's columns
     n = int(sum(p["n"] for p in profiles))
     k_total = int(sum(p["n_errors"] for p in profiles))
     if n == 0:

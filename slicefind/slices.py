@@ -306,9 +306,9 @@ def find_slices(
     from slicefind.distributed import is_dask_frame
 
     if is_dask_frame(data):
-        unsupported = [name for name, value, default in (
-            ("embeddings", embeddings, None), ("error_kind", error_kind, "all"),
-            ("true_class", true_class, None), ("positive", positive, None)) if value != default]
+        unsupported = [name for name, given in (
+            ("embeddings", embeddings is not None), ("error_kind", error_kind != "all"),
+            ("true_class", true_class is not None), ("positive", positive is not None)) if given]
         if unsupported or engine != "bitset":
             names = unsupported + (["engine"] if engine != "bitset" else [])
             msg = (f"with a Dask DataFrame, {', '.join(names)} cannot be used yet; compute() a "

@@ -24,7 +24,9 @@ EXAMPLES = {
   slicefind scan dev.csv --label label --prediction pred --out ws
   slicefind scan dev.parquet --errors is_wrong --exclude example_id --out ws
   slicefind scan dev.csv --label y --prediction p --embeddings emb.npy --id-column parcel_id --out ws
-  slicefind scan scores.csv --loss loss --threshold 0.7 --out ws""",
+  slicefind scan scores.csv --loss loss --threshold 0.7 --out ws
+  slicefind scan 'logs/*.parquet' --errors wrong --engine dask --out ws
+  slicefind scan logs/ --errors wrong --engine dask --scheduler tcp://10.0.0.5:8786 --out ws""",
     "queue": """examples:
   slicefind queue ws                      # 100 errors, 20 of them from no slice
   slicefind queue ws --budget 200 --rest 40
@@ -217,12 +219,15 @@ def _scan(found_kwargs, frame, ws_path, *, show=(), images=None, image_column=No
     with step("saving the scan"):
         ws = Workspace(ws_path)
         pointer = tuple(dict.fromkeys([c for c in (*show, image_column, text_column) if c]))
-        ws.save_scan(found, data_fingerprint=data_fingerprint(frame), show=pointer)
+        is_pandas = isinstance(frame, pd.DataFrame)
+        ws.save_scan(found, data_fingerprint=data_fingerprint(frame) if is_pandas else None,
+                     show=pointer)
         clusters = found.extras.get("clusters")
         map_xy = getattr(clusters, "map_xy", None)
         if map_xy is not None:
             ws.save_artifact("map_xy", np.asarray(map_xy, dtype=np.float32))
-        ws.save_artifact("descriptions", _describe_top(found, text_column))
+        if found.extras.get("items") is not None and found.extras["items"].bits is not None:
+            ws.save_artifact("descriptions", _describe_top(found, text_column))
         ws.save_artifact("report", {"images": images, "image_column": image_column,
                                     "text_column": text_column, "data_folder": data_folder,
                                     "notes": list(notes)})
@@ -237,17 +242,46 @@ def _scan(found_kwargs, frame, ws_path, *, show=(), images=None, image_column=No
     return ws, found
 
 
+def _read_dask(pattern: str, scheduler: str | None):
+    """A dask DataFrame from Parquet files (a folder or a glob) and a client to count on."""
+    from slicefind.table import SlicefindValueError
+
+    try:
+        import dask.dataframe as dd
+        from distributed import Client
+    except ImportError:
+        raise SlicefindValueError('--engine dask needs dask: pip install "slicefind[dask]"') from None
+    import glob as _glob
+
+    if not (os.path.isdir(pattern) or _glob.glob(pattern)):
+        raise SlicefindValueError(f"DATA {pattern!r} matches no file or folder.")
+    frame = dd.read_parquet(pattern)
+    return frame, (Client(scheduler) if scheduler else None)
+
+
 def cmd_scan(args) -> int:
-    frame = _read_table(args.data)
-    emb = _read_embeddings(args.embeddings, args.id_column, frame) if args.embeddings else None
-    label_col = frame[args.label] if args.label in frame.columns else pd.Series(dtype=object)
+    client = None
+    if args.engine == "dask":
+        if args.embeddings:
+            from slicefind.table import SlicefindValueError
+            raise SlicefindValueError("--embeddings cannot be combined with --engine dask yet.")
+        frame, client = _read_dask(args.data, args.scheduler)
+        emb = None
+        label_col = pd.Series(dtype=object)
+    else:
+        frame = _read_table(args.data)
+        emb = _read_embeddings(args.embeddings, args.id_column, frame) if args.embeddings else None
+        label_col = frame[args.label] if args.label in frame.columns else pd.Series(dtype=object)
     kwargs = dict(label=args.label, prediction=args.prediction, errors=args.errors, loss=args.loss,
                   threshold=args.threshold, embeddings=emb, exclude=tuple(args.exclude),
                   max_terms=args.max_terms, min_rows=args.min_rows, fdr=args.fdr,
                   random_state=args.seed, error_kind=args.error_kind,
                   positive=_coerce_like(args.positive, label_col),
                   true_class=_coerce_like(args.true_class, label_col),
-                  id_column=args.id_column, clusters=args.clusters, engine=args.engine)
+                  id_column=args.id_column, clusters=args.clusters,
+                  engine="bitset" if args.engine == "dask" else args.engine)
+    if client is not None:
+        kwargs["client"] = client
     images = os.path.abspath(args.images) if args.images else None
     _scan(kwargs, frame, args.out, show=tuple(args.show), images=images,
           image_column=args.image_column, text_column=args.text_column,
@@ -449,7 +483,10 @@ def _add_scan_options(p):
     p.add_argument("--min-rows", type=int, default=None, help="fewest rows per slice (default max(20, 0.5%%))")
     p.add_argument("--fdr", type=float, default=0.05, help="false discovery rate (default 0.05)")
     p.add_argument("--clusters", default="both", choices=("both", "regions", "error_modes", "none"))
-    p.add_argument("--engine", default="bitset", choices=("bitset", "mlxtend"))
+    p.add_argument("--engine", default="bitset", choices=("bitset", "mlxtend", "dask"),
+                   help="bitset (in memory, default), mlxtend (reference), dask (DATA: Parquet folder or glob)")
+    p.add_argument("--scheduler", metavar="ADDRESS", help="with --engine dask: a running Dask scheduler "
+                   "(default: a local cluster of 2 worker processes)")
     p.add_argument("--seed", type=int, default=0, help="random_state (default 0)")
     p.add_argument("--top", type=int, default=10, help="slices to print (default 10)")
 

@@ -75,18 +75,11 @@ class _Step:
         return _Ctx()
 
 
-def _read_table(path: str) -> pd.DataFrame:
-    """A CSV or Parquet file as a DataFrame, or a clear error."""
-    from slicefind.table import SlicefindValueError
+def _read_table(path: str, argument: str = "DATA") -> pd.DataFrame:
+    """A CSV, TSV or Parquet file as a DataFrame, or a clear error naming the argument."""
+    from slicefind.compare import _read_frame
 
-    if not os.path.exists(path):
-        raise SlicefindValueError(f"DATA file {path!r} does not exist.")
-    lower = path.lower()
-    if lower.endswith((".parquet", ".pq")):
-        return pd.read_parquet(path)
-    if lower.endswith((".csv", ".csv.gz", ".tsv", ".txt")):
-        return pd.read_csv(path, sep="\t" if lower.endswith(".tsv") else ",")
-    raise SlicefindValueError(f"DATA file {path!r} must be .csv, .tsv or .parquet.")
+    return _read_frame(path, argument)
 
 
 def _read_embeddings(path: str, id_column: str | None, frame: pd.DataFrame) -> np.ndarray:
@@ -97,7 +90,7 @@ def _read_embeddings(path: str, id_column: str | None, frame: pd.DataFrame) -> n
         raise SlicefindValueError(f"--embeddings file {path!r} does not exist.")
     if path.lower().endswith(".npy"):
         return np.load(path, allow_pickle=False)
-    vectors = _read_table(path)
+    vectors = _read_table(path, "--embeddings")
     if id_column and id_column in vectors.columns and id_column in frame.columns:
         order = pd.Index(vectors[id_column]).get_indexer(frame[id_column])
         if (order < 0).any():

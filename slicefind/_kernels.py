@@ -52,14 +52,14 @@ def count_extensions(bits, prefixes, offsets, extensions, counts):
                 counts[e] += total
 
 
-@numba.njit(parallel=True, cache=True, nogil=True)
+@numba.njit(cache=True, nogil=True)      # serial: a parallel kernel costs ~0.3 s to load from cache
 def hypergeom_tails(x0, step, N, K, n, limit, first, out):
     """out[i] = sum of hypergeometric pmf terms from x0[i] towards `limit[i]` (step +1 or -1).
 
     `first[i]` is pmf(x0[i]); later terms follow from the ratio recursion and the sum
     stops once a term adds less than 1e-17 of it (see `stats._hypergeom_sf`).
     """
-    for i in numba.prange(x0.size):
+    for i in range(x0.size):
         x = x0[i]
         term = first[i]
         total = term

@@ -414,7 +414,7 @@ def find_slices(
     terms = tested["n_terms"].to_numpy()
     # aliases name the source of a cluster ("region: 71% label_stock = glossy, ...")
     source_named = [d if src == "rule" else f"{src.replace('_', ' ')}: {d}"
-                    for d, src in zip(descriptions, tested["source"])]
+                    for d, src in zip(descriptions, tested["source"].to_numpy(dtype=object))]
     order = sorted(eligible.tolist(), key=lambda i: (-excess[i], i >= n_rules, terms[i], p_all[i],
                                                      descriptions[i]))
     kept, kept_bits, aliases, sharpened, explained = _select(

@@ -107,7 +107,10 @@ def _log_pmf(x, N, K, n):
 
 
 #: tails at least this many go to the compiled loop (numba) instead of numpy
-NUMBA_MIN_TAILS = 20_000
+NUMBA_MIN_TAILS = 2_000
+#: at most this many tails are summed in a plain Python loop (numpy's per-call overhead
+#: dominates a handful of tails: ~10 ms per single tail, against ~50 us in Python)
+PYTHON_MAX_TAILS = 32
 
 
 def _hypergeom_sf(a, N, K, n) -> np.ndarray:
@@ -134,7 +137,11 @@ def _hypergeom_sf(a, N, K, n) -> np.ndarray:
     Ns, Ks, ns = N[inside], K[inside], n[inside]
     limit = np.where(upper, hi[inside], lo[inside])
     first = np.exp(_log_pmf(x0, Ns, Ks, ns))
-    if inside.size >= NUMBA_MIN_TAILS:
+    if inside.size <= PYTHON_MAX_TAILS:
+        total = np.array([_tail_python(*args) for args in zip(
+            x0.tolist(), step.tolist(), Ns.tolist(), Ks.tolist(), ns.tolist(), limit.tolist(),
+            first.tolist())])
+    elif inside.size >= NUMBA_MIN_TAILS:
         from slicefind.bitset import _numba_kernels
 
         total = np.empty(inside.size)
@@ -143,6 +150,24 @@ def _hypergeom_sf(a, N, K, n) -> np.ndarray:
         total = _tails_numpy(x0, step, Ns, Ks, ns, limit, first)
     out[inside] = np.where(upper, total, 1.0 - total)
     return np.clip(out, 0.0, 1.0)
+
+
+def _tail_python(x, step, N, K, n, limit, term):
+    """One tail of `_hypergeom_sf` in plain floats (same recursion and stopping rule)."""
+    total = term
+    while term > total * 1e-17:
+        if step > 0:
+            if x + 1.0 > limit:
+                break
+            term *= (K - x) * (n - x) / ((x + 1.0) * (N - K - n + x + 1.0))
+            x += 1.0
+        else:
+            if x - 1.0 < limit:
+                break
+            term *= x * (N - K - n + x) / ((K - x + 1.0) * (n - x + 1.0))
+            x -= 1.0
+        total += term
+    return total
 
 
 def _tails_numpy(x0, step, N, K, n, limit, first):

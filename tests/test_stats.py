@@ -156,3 +156,18 @@ def test_fisher_tail_large_table_matches_scipy_and_exact_sum():
     exact = Fraction(sum(comb(75_000, x) * comb(925_000, 5_000 - x) for x in range(420, 5_001)),
                      comb(1_000_000, 5_000))
     assert float(exact) == pytest.approx(got[0], rel=5e-9)
+
+
+def test_fisher_tail_engines_agree():
+    """The Python (few tails), numpy and numba loops give the same tails."""
+    from slicefind import stats
+    rng = np.random.default_rng(9)
+    n = rng.integers(100, 50_000, 3000)
+    k = rng.binomial(n, 0.09)
+    together = fisher_greater(k, n, 75_000, 1_000_000)               # numba (>= 2,000 tails)
+    in_numpy = np.concatenate([fisher_greater(k[i:i + 500], n[i:i + 500], 75_000, 1_000_000)
+                               for i in range(0, 3000, 500)])          # numpy (33..1,999)
+    one_by_one = np.array([fisher_greater(int(a), int(b), 75_000, 1_000_000)
+                           for a, b in zip(k[:200], n[:200])])        # Python loop (<= 32)
+    assert np.allclose(together, in_numpy, rtol=1e-12, atol=0)
+    assert np.allclose(together[:200], one_by_one, rtol=1e-12, atol=0)

@@ -16,9 +16,9 @@ does not pay numba's compile cost on every call:
    distance cut-off).
 
 Exact duplicate embedding rows are collapsed first and every result is mapped back to
-each copy. Above ``sample_above`` distinct rows the reduction and clustering are fitted
-on a sample (every error up to a cap, plus random correct rows) and the other rows are
-assigned by nearest neighbours in the PCA space.
+each copy. Above ``sample_above`` distinct rows (default 20,000) the reduction and
+clustering are fitted on a sample (every error up to a cap, plus random correct rows) and
+the other rows are assigned by nearest neighbours in the PCA space.
 """
 from __future__ import annotations
 
@@ -58,6 +58,9 @@ CLUSTER_DIMS = 8
 _BLOCK = 20_000
 #: warn when graph pieces smaller than a region hold at least this share of the fitted rows
 FRAGMENT_WARN_SHARE = 0.01
+#: the timed steps of `cluster_slices`, in order (keys of ``diagnostics["timings"]``)
+_STEPS = ("distinct", "pca", "knn_graph", "layout", "map", "hdbscan_regions",
+          "hdbscan_error_modes", "assign", "describe")
 #: smallest distinct-row count worth clustering
 MIN_ROWS_TO_CLUSTER = 50
 
@@ -147,32 +150,48 @@ def noise_as_singletons(labels) -> np.ndarray:
 
 # ---------------------------------------------------------------- reduction steps
 
-def _distinct(x: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """(first row of each distinct vector, inverse) of the rows of `x`, by a 64-bit row hash
-    checked against the representative (exact; falls back to np.unique on a collision)."""
-    import pandas as pd
-
+def _row_hashes(x: np.ndarray) -> np.ndarray:
+    """A 64-bit hash of each row's bytes: every word xor-folded (so float32 values held as
+    float64, whose low 29 bits are zero, still spread), times an odd constant per column,
+    summed modulo 2**64. Equal rows hash equal; unequal ones rarely do."""
     n, d = x.shape
-    mult = (np.random.default_rng(12345).integers(1, 2**62, d, dtype=np.uint64) | np.uint64(1))
-    hashes = np.empty(n, dtype=np.uint64)
+    mult = np.random.default_rng(12345).integers(1, 2**62, d, dtype=np.uint64) | np.uint64(1)
     unsigned = np.dtype(f"u{x.dtype.itemsize}")
+    hashes = np.empty(n, dtype=np.uint64)
     with np.errstate(over="ignore"):
         for lo in range(0, n, _BLOCK):
             words = np.ascontiguousarray(x[lo:lo + _BLOCK]).view(unsigned).astype(np.uint64)
+            words ^= words >> np.uint64(29)
+            words ^= words << np.uint64(17)
             hashes[lo:lo + _BLOCK] = (words * mult).sum(axis=1, dtype=np.uint64)
-    codes, _ = pd.factorize(hashes, sort=False)
+    return hashes
+
+
+def _distinct(x: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """(first row of each distinct vector, in row order; inverse) of the rows of `x`.
+
+    Rows are grouped by `_row_hashes`; a row is compared with its group's first row only
+    when the hash is shared, and hash groups holding unequal rows (collisions) are split
+    exactly with numpy's unique on those rows alone, so memory stays small."""
+    import pandas as pd
+
+    n = x.shape[0]
+    codes, _ = pd.factorize(_row_hashes(x), sort=False)
     first = np.full(int(codes.max()) + 1, n, dtype=np.int64)
     np.minimum.at(first, codes, np.arange(n))
-    same = np.ones(n, dtype=bool)
-    for lo in range(0, n, _BLOCK):
-        sl = slice(lo, lo + _BLOCK)
-        same[sl] = np.all(x[sl] == x[first[codes[sl]]], axis=1)
-    if not same.all():                                   # a hash collision: do it exactly
-        _, first, inverse = np.unique(x, axis=0, return_index=True, return_inverse=True)
-        order = np.argsort(first, kind="stable")
-        rank = np.empty_like(order)
-        rank[order] = np.arange(order.size)
-        return first[order], rank[inverse.ravel()]
+    shared = np.flatnonzero(first[codes] != np.arange(n))
+    same = np.ones(shared.size, dtype=bool)
+    for lo in range(0, shared.size, _BLOCK):
+        rows = shared[lo:lo + _BLOCK]
+        same[lo:lo + _BLOCK] = np.all(x[rows] == x[first[codes[rows]]], axis=1)
+    if not same.all():                                   # hash collisions: split those groups
+        members = np.flatnonzero(np.isin(codes, np.unique(codes[shared[~same]])))
+        _, exact = np.unique(x[members], axis=0, return_inverse=True)
+        codes = codes.astype(np.int64)
+        codes[members] = codes.max() + 1 + exact.ravel()
+        codes, _ = pd.factorize(codes, sort=False)       # renumber in order of first appearance
+        first = np.full(int(codes.max()) + 1, n, dtype=np.int64)
+        np.minimum.at(first, codes, np.arange(n))
     return first.astype(np.intp), codes.astype(np.intp)
 
 
@@ -189,7 +208,7 @@ def _pca(x: np.ndarray, rows: np.ndarray, fit: np.ndarray, n_dims: int, metric: 
     loading is positive). Data with at most n_dims columns is only rotated, so the
     leading columns are always the leading principal coordinates."""
     n = rows.size
-    fit = x[rows[fit]]
+    fit = x[rows[fit]].astype(np.float64)
     if metric == "cosine":
         fit = _normalise(fit)
     mean = fit.mean(axis=0)
@@ -275,8 +294,10 @@ def _umap_layout(z: np.ndarray, graph, n_dims: int, seed: int | None, *, init: s
     embedding. An int seed runs the single-threaded, reproducible optimiser; None the
     parallel one."""
     os.environ.setdefault("NUMBA_CACHE_DIR", _cache_dir())
-    import umap.layouts
-    from umap.umap_ import find_ab_params, simplicial_set_embedding
+    with warnings.catch_warnings():          # umap-learn's note on its optional TensorFlow part
+        warnings.filterwarnings("ignore", message=".*[Tt]ensor[Ff]low.*")
+        import umap.layouts
+        from umap.umap_ import find_ab_params, simplicial_set_embedding
 
     _cache_umap_kernels(umap.layouts)
     a, b = find_ab_params(1.0, 0.1)              # umap-learn's defaults: spread=1, min_dist=0.1
@@ -508,7 +529,7 @@ def cluster_slices(
     min_cluster_size: int | None = None,
     min_error_cluster_size: int | None = None,
     min_samples: int | None = None,
-    sample_above: int = 50_000,
+    sample_above: int = 20_000,
     sample_size: int = 20_000,
     max_sample_errors: int | None = None,
     make_map: bool = True,
@@ -543,8 +564,10 @@ def cluster_slices(
     min_samples : int, optional
         HDBSCAN's ``min_samples``; default ``min(10, min_cluster_size)`` (much faster than
         HDBSCAN's own default, which equals min_cluster_size).
-    sample_above : int, default=50_000
-        Distinct embedding rows above which the fit runs on a sample.
+    sample_above : int, default=20_000
+        Distinct embedding rows above which the fit runs on a sample. (On two cores a
+        full fit of 50k rows took 66-70 s, a 20k-row sample plus assignment 28 s at 100k
+        rows; see benchmarks/README.md.)
     sample_size : int, default=20_000
         Rows in that sample.
     max_sample_errors : int, optional
@@ -574,6 +597,12 @@ def cluster_slices(
     _require("hdbscan", package="hdbscan", needed_for="embeddings=")
     from slicefind.describe import describe_rows
 
+    from tqdm.auto import tqdm
+
+    n = table.n_rows
+    if progress is None:
+        progress = n >= 20_000
+    steps = tqdm(total=len(_STEPS), desc="embedding clusters", disable=not progress, leave=False)
     timings: dict[str, float] = {}
     clock = time.perf_counter()
 
@@ -582,13 +611,14 @@ def cluster_slices(
         now = time.perf_counter()
         timings[name] = round(now - clock, 3)
         clock = now
+        steps.update()
+        following = _STEPS.index(name) + 1
+        if following < len(_STEPS):
+            steps.set_postfix_str(_STEPS[following])
 
     seeded = random_state is not None
     rng = np.random.default_rng(random_state)
     seed_layout, seed_map = (int(s) for s in rng.integers(0, 2**31 - 1, 2))
-    n = table.n_rows
-    if progress is None:
-        progress = n >= 20_000
     x = table.embeddings
     first, inverse = _distinct(x)
     n_distinct = first.size
@@ -603,6 +633,7 @@ def cluster_slices(
                   random_state=random_state if isinstance(random_state, (int, np.integer)) else None)
     diagnostics: dict[str, Any] = dict(n_rows=n, n_distinct=n_distinct, seeded=seeded, timings=timings)
     if n_distinct < MIN_ROWS_TO_CLUSTER:
+        steps.close()
         diagnostics.update(n_fit=0, sampled=False, skipped=f"only {n_distinct} distinct embedding rows")
         empty = {"region": np.full(n, NOISE), "error_mode": np.full(n, NOISE)}
         return ClusterResult((), {k: v for k, v in empty.items() if _wanted(k, strategy)}, None, None,
@@ -707,6 +738,7 @@ def cluster_slices(
             slices.append(Slice(source=source, description=text, rows=rows, key=f"{key}:{c}",
                                 extra={"cluster": c}))
     lap("describe")
+    steps.close()
 
     diagnostics.update(
         n_fit=int(n_fit), sampled=bool(sampled), n_graph_components=n_comp, connected=n_comp == 1,

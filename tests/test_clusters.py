@@ -199,6 +199,17 @@ def test_distinct_matches_numpy_unique(n_base, d, copies, seed):
     assert np.all(np.diff(first) > 0)
 
 
+def test_distinct_survives_hash_collisions(monkeypatch):
+    """When every row hashes alike, the exact split still groups equal rows only."""
+    rng = np.random.default_rng(0)
+    x = rng.integers(0, 3, (40, 2)).astype(np.float64)[rng.integers(0, 40, 200)]
+    monkeypatch.setattr(clusters, "_row_hashes", lambda rows: np.zeros(rows.shape[0], np.uint64))
+    first, inverse = clusters._distinct(x)
+    assert np.array_equal(x, x[first][inverse])
+    assert len(np.unique(x, axis=0)) == first.size
+    assert np.all(np.diff(first) > 0)
+
+
 def test_noise_convention_matches_references():
     """With noise as singletons the ARI of REFERENCES §8's noise example is 22/29."""
     # REFERENCES.md §8 (hand formula with fractions): -1 as one cluster 13/21, singletons 22/29

@@ -168,13 +168,16 @@ def _hidden(model, flat: np.ndarray) -> np.ndarray:
     return np.maximum(hidden, 0.0).astype(np.float32)
 
 
-def make_depot(n_rows: int = 6000, *, random_state=0) -> Depot:
+def make_depot(n_rows: int = 6000, *, tape_share: float = 0.05, random_state=0) -> Depot:
     """Build the parcel-depot demo dev set.
 
     Parameters
     ----------
     n_rows : int, default=6000
         Rows (scanned parcels) in the dev set, at least 100.
+    tape_share : float, default=0.05
+        Share of parcels with packing tape across the label (the degradation no column
+        records), in [0, 0.5]; smaller is harder to find.
     random_state : int, Generator or None, default=0
         Seeds everything; the same seed gives the same frame, images and embeddings.
 
@@ -194,6 +197,8 @@ def make_depot(n_rows: int = 6000, *, random_state=0) -> Depot:
     """
     if isinstance(n_rows, bool) or not isinstance(n_rows, (int, np.integer)) or n_rows < 100:
         raise ValueError(f"n_rows must be an integer >= 100; got {n_rows!r}.")
+    if isinstance(tape_share, bool) or not isinstance(tape_share, (int, float)) or not 0 <= tape_share <= 0.5:
+        raise ValueError(f"tape_share must be a number in [0, 0.5]; got {tape_share!r}.")
     from sklearn.datasets import load_digits
 
     rng = np.random.default_rng(random_state)
@@ -218,7 +223,7 @@ def make_depot(n_rows: int = 6000, *, random_state=0) -> Depot:
 
     faded = (label_stock == "thermal") & (depot == "harbour")
     smeared = (scanner == "S3") & (belt_speed >= 2.2)
-    taped = rng.random(n) < 0.05
+    taped = rng.random(n) < tape_share
 
     images = _augment(originals, source, rng)
     if faded.any():

@@ -75,3 +75,16 @@ def test_bad_n_rows(n_rows):
     """n_rows must be an integer of at least 100; the message names it."""
     with pytest.raises(ValueError, match="n_rows"):
         make_depot(n_rows)
+
+
+@pytest.mark.parametrize("share", [-0.1, 0.6, "0.1", None])
+def test_bad_tape_share(share):
+    """tape_share must be a number in [0, 0.5]; the message names it."""
+    with pytest.raises(ValueError, match="tape_share"):
+        make_depot(200, tape_share=share)
+
+
+def test_tape_share_sets_the_unrecorded_slice():
+    """tape_share sets the share of parcels in the unrecorded slice."""
+    small = make_depot(2000, tape_share=0.015, random_state=0).planted["packing tape"].rows.size
+    assert 15 <= small <= 45                     # 30 expected, binomial spread

@@ -256,9 +256,10 @@ def describe_rows(table: EvalTable, rows: np.ndarray, *, items=None, exclude_tex
     """One line that says what the rows (positions among the analysed rows) share.
 
     Up to two metadata items held by at least half of the rows and at least 1.5 times
-    as common as overall, a dominant true label (same test), the dominant confusions,
-    then size and error rate: ``71% label_stock = glossy, mostly 4 -> 9; 412 rows, 38%
-    errors``. The slice id is not part of it.
+    as common as overall (or "no metadata value stands out" when items were given and
+    none qualifies), a dominant true label (same test), the dominant confusions, then size
+    and error rate: ``71% label_stock = glossy, mostly 4 -> 9; 412 rows, 38% errors``.
+    The slice id is not part of it.
     """
     rows = np.asarray(rows, dtype=np.intp)
     parts = []
@@ -267,6 +268,8 @@ def describe_rows(table: EvalTable, rows: np.ndarray, *, items=None, exclude_tex
     for text, share, lift in enriched[["item", "slice_share", "lift"]].itertuples(index=False):
         if share >= SUMMARY_MIN_SHARE and lift >= SUMMARY_MIN_LIFT and len(parts) < 2:
             parts.append(f"{_percent(share)} {text}")
+    if not parts and items is not None and len(items) and not exclude_texts:
+        parts.append("no metadata value stands out")
     labels = label_shares(table, rows, top=1)
     if not labels.empty:
         share, overall = labels.at[0, "slice_share"], labels.at[0, "overall_share"]

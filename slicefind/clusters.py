@@ -582,6 +582,27 @@ def cluster_slices(
     Returns
     -------
     ClusterResult
+
+    References
+    ----------
+    .. [1] L. McInnes, J. Healy and J. Melville, "UMAP: Uniform Manifold Approximation and
+           Projection for Dimension Reduction", arXiv:1802.03426 (2018).
+    .. [2] R. J. G. B. Campello, D. Moulavi and J. Sander, "Density-based clustering based
+           on hierarchical density estimates", PAKDD 2013, LNCS 7819, 160-172.
+
+    Examples
+    --------
+    >>> import pandas as pd
+    >>> from sklearn.datasets import make_blobs
+    >>> from slicefind.table import build_eval_table
+    >>> x, blob = make_blobs(n_samples=[200, 200, 200], n_features=8, random_state=0)
+    >>> wrong = np.random.default_rng(0).random(600) < np.where(blob == 2, 0.5, 0.05)
+    >>> table = build_eval_table(pd.DataFrame({"site": ["a", "b"] * 300}), errors=wrong, embeddings=x)
+    >>> result = cluster_slices(table, strategy="regions", random_state=0)
+    >>> result
+    ClusterResult(n_slices=3, region=3)
+    >>> sorted(sl.rows.size for sl in result.slices)
+    [200, 200, 200]
     """
     if table.embeddings is None:
         raise SlicefindValueError("cluster_slices needs embeddings: pass embeddings= to find_slices.")

@@ -6,6 +6,7 @@ scikit-learn, dask) are imported only by the functions that need them.
 from importlib.metadata import PackageNotFoundError, version
 
 from slicefind.compare import Comparison, compare
+from slicefind.describe import SliceDescription, describe_slice
 from slicefind.queue import Queue, build_queue
 from slicefind.slices import FoundSlices, find_slices
 from slicefind.table import SlicefindError, SlicefindTypeError, SlicefindValueError
@@ -27,6 +28,8 @@ __all__ = [
     "read_reviews",
     "compare",
     "Comparison",
+    "describe_slice",
+    "SliceDescription",
     "Workspace",
     "data_fingerprint",
     "SlicefindError",

@@ -359,8 +359,9 @@ def find_slices(
     if table.embeddings is not None and clusters != "none":
         from slicefind.clusters import cluster_slices
 
-        result = cluster_slices(table, strategy=clusters, random_state=random_state,
-                                **dict(cluster_options or {}))
+        options = dict(cluster_options or {})
+        options.setdefault("items", items)
+        result = cluster_slices(table, strategy=clusters, random_state=random_state, **options)
         extra_slices = list(result.slices)
         cluster_extra = {"clusters": result}
     if extra_slices:

@@ -352,7 +352,8 @@ def build_eval_table(
 
     emb = None
     if embeddings is not None:
-        emb = _check_embeddings(embeddings, len(data))[keep]
+        emb = _check_embeddings(embeddings, len(data))
+        emb = emb if keep.all() else emb[keep]
 
     not_mined = set(exclude) | set(used.values()) | ({id_column} if id_column else set())
     view = data.iloc[positions] if not keep.all() else data
@@ -395,7 +396,9 @@ def _check_embeddings(embeddings, n_rows: int) -> np.ndarray:
     if isinstance(embeddings, pd.DataFrame):
         embeddings = embeddings.to_numpy()
     try:
-        emb = np.asarray(embeddings, dtype=np.float64)
+        emb = np.asarray(embeddings)
+        if emb.dtype.kind != "f":              # float32 stays float32: no copy at 1M x 384
+            emb = emb.astype(np.float64)
     except (TypeError, ValueError):
         msg = f"embeddings must be a numeric (n_rows, d) array; got {type(embeddings).__name__}."
         raise SlicefindTypeError(msg) from None
@@ -407,10 +410,17 @@ def _check_embeddings(embeddings, n_rows: int) -> np.ndarray:
         raise SlicefindValueError(msg)
     if emb.shape[1] == 0:
         raise SlicefindValueError("embeddings has 0 columns; it needs at least one dimension.")
-    bad = ~np.isfinite(emb)
-    if bad.any():
-        row, col = (int(x) for x in np.argwhere(bad)[0])
-        msg = (f"embeddings holds {int(bad.any(axis=1).sum())} rows with NaN or inf, first at row "
+    bad_rows, first = 0, None
+    for start in range(0, emb.shape[0], 65_536):    # blocks: no n x d mask of the whole array
+        bad = ~np.isfinite(emb[start:start + 65_536])
+        if bad.any():
+            bad_rows += int(bad.any(axis=1).sum())
+            if first is None:
+                row, col = (int(x) for x in np.argwhere(bad)[0])
+                first = (start + row, col)
+    if first is not None:
+        row, col = first
+        msg = (f"embeddings holds {bad_rows} rows with NaN or inf, first at row "
                f"{row} (column {col}: {float(emb[row, col])!r}); drop or impute them first.")
         raise SlicefindValueError(msg)
     return emb

@@ -153,7 +153,6 @@ def _report_inputs(ws, found, *, tally_result=None, simulated=False):
         images = np.load(image_file, allow_pickle=False, mmap_mode="r")
     texts = paths = None
     frame = found.eval_table.data
-    by_position = pd.Series(range(len(frame)), index=found.eval_table.positions)
     n_input = found.eval_table.n_input_rows
     for kind in ("image_column", "text_column"):
         column = artifacts.get(kind)
@@ -166,7 +165,6 @@ def _report_inputs(ws, found, *, tally_result=None, simulated=False):
                 paths = [v if os.path.isabs(str(v)) else os.path.join(base, str(v)) for v in values]
             else:
                 texts = values
-    del by_position
     map_xy = ws.load_artifact("map_xy", default=None)
     comparison = None
     stored = ws.load_artifact("compare", default=None)

@@ -151,7 +151,7 @@ class FoundSlices:
         return head + shown.to_html(index=False, float_format=lambda x: f"{x:.3g}")
 
 
-def _check_params(n_rows, max_terms, min_rows, min_errors, fdr, confidence_level, engine,
+def _check_params(max_terms, min_rows, min_errors, fdr, confidence_level, engine,
                   clusters, merge_jaccard):
     """Validate find_slices' options; return (min_rows, min_errors) as ints or None."""
     def _int(name, value, low):
@@ -181,7 +181,7 @@ def _check_params(n_rows, max_terms, min_rows, min_errors, fdr, confidence_level
 def _rule_candidates(items: ItemSet, counts: RuleCounts):
     """Flatten the levels: (level, index) and the description of every rule, in search order."""
     where, text = [], []
-    texts = np.array([item.text for item in items.items] + [""], dtype=object)
+    texts = np.array([item.text for item in items.items], dtype=object)
     for width, level in enumerate(counts.levels, start=1):
         where += [(width - 1, i) for i in range(len(level))]
         joined = texts[level[:, 0]] if len(level) else np.array([], dtype=object)
@@ -289,7 +289,7 @@ def find_slices(
     >>> print(found.table.loc[0, "description"])
     scanner = S3 and shift = night
     """
-    max_terms, min_rows, min_errors = _check_params(None, max_terms, min_rows, min_errors,
+    max_terms, min_rows, min_errors = _check_params(max_terms, min_rows, min_errors,
                                                     fdr, confidence_level, engine, clusters,
                                                     merge_jaccard)
     if isinstance(n_bins, bool) or not isinstance(n_bins, (int, np.integer)) or n_bins < 1:

@@ -201,14 +201,12 @@ def _normalise(x: np.ndarray) -> np.ndarray:
     return x / np.where(norms > 0, norms, 1.0)
 
 
-def _pca(x: np.ndarray, rows: np.ndarray, fit: np.ndarray, n_dims: int, metric: str) -> np.ndarray:
-    """float32 (len(rows), <= n_dims) projection of ``x[rows]`` on the top principal axes
-    of ``x[rows[fit]]``, applied blockwise (no full copy of `x`). The axes come from the eigen-decomposition of the covariance
-    matrix (deterministic: no random start; each axis's sign fixed so that its largest
-    loading is positive). Data with at most n_dims columns is only rotated, so the
-    leading columns are always the leading principal coordinates."""
-    n = rows.size
-    fit = x[rows[fit]].astype(np.float64)
+def _pca_axes(fit: np.ndarray, n_dims: int, metric: str) -> tuple[np.ndarray, np.ndarray]:
+    """(mean, axes) of the top principal axes of the rows `fit`: the eigen-decomposition of
+    their covariance matrix (deterministic: no random start; each axis's sign fixed so
+    that its largest loading is positive). Data with at most n_dims columns is only
+    rotated, so the leading columns are always the leading principal coordinates."""
+    fit = np.asarray(fit, dtype=np.float64)
     if metric == "cosine":
         fit = _normalise(fit)
     mean = fit.mean(axis=0)
@@ -217,10 +215,16 @@ def _pca(x: np.ndarray, rows: np.ndarray, fit: np.ndarray, n_dims: int, metric: 
     values, vectors = np.linalg.eigh(cov)                 # ascending eigenvalues
     axes = vectors[:, ::-1][:, :min(n_dims, fit.shape[0])]
     signs = np.sign(axes[np.argmax(np.abs(axes), axis=0), np.arange(axes.shape[1])])
-    axes = axes * np.where(signs == 0, 1.0, signs)
-    out = np.empty((n, axes.shape[1]), dtype=np.float32)
-    for lo in range(0, n, _BLOCK):
-        block = x[rows[lo:lo + _BLOCK]]
+    return mean, axes * np.where(signs == 0, 1.0, signs)
+
+
+def _project(x: np.ndarray, mean: np.ndarray, axes: np.ndarray, metric: str) -> np.ndarray:
+    """float32 (len(x), n_axes) PCA coordinates of the rows of `x`, blockwise (no full
+    float64 copy). Each row's coordinates depend on that row alone, so a row projects to
+    the same value in memory and on any Dask partition."""
+    out = np.empty((x.shape[0], axes.shape[1]), dtype=np.float32)
+    for lo in range(0, x.shape[0], _BLOCK):
+        block = x[lo:lo + _BLOCK]
         if metric == "cosine":
             block = _normalise(block)
         out[lo:lo + _BLOCK] = (block - mean) @ axes
@@ -432,28 +436,83 @@ def _extend_modes(coords: np.ndarray, err: np.ndarray, modes: np.ndarray, n_vote
 def _assign(z: np.ndarray, fit: np.ndarray, rest: np.ndarray, label_sets: list[np.ndarray],
             coord_sets: list[np.ndarray], n_neighbors: int, progress: bool):
     """Give the `rest` rows the majority label of their `n_neighbors` nearest fit rows (in
-    the PCA space `z`), for each labelling in `label_sets` (fit-row labels), and the
-    distance-weighted mean of their coordinates in each of `coord_sets`."""
-    from sklearn.neighbors import NearestNeighbors
+    the space `z`), for each labelling in `label_sets` (fit-row labels), and the
+    distance-weighted mean of their coordinates in each of `coord_sets` (`_vote`)."""
     from tqdm.auto import tqdm
 
-    k = min(n_neighbors, fit.size)
-    nn = NearestNeighbors(n_neighbors=k, algorithm="brute").fit(z[fit])
+    nn = _neighbours(z[fit], n_neighbors)
     labels_out = [np.empty(rest.size, dtype=np.int64) for _ in label_sets]
     coords_out = [np.empty((rest.size, c.shape[1]), dtype=np.float32) for c in coord_sets]
     blocks = range(0, rest.size, _BLOCK)
     for lo in tqdm(blocks, desc="assigning rows to clusters", disable=not progress, leave=False):
-        block = rest[lo:lo + _BLOCK]
-        d, j = nn.kneighbors(z[block])
-        w = 1.0 / (d + 1e-6 * (d[:, -1:] + 1e-12))
-        for labels, out in zip(label_sets, labels_out):
-            lab = labels[j] + 1                               # 0 = noise
-            votes = np.zeros((block.size, int(labels.max(initial=NOISE)) + 2))
-            np.add.at(votes, (np.arange(block.size)[:, None], lab), w)
-            out[lo:lo + block.size] = votes.argmax(axis=1) - 1
-        for coords, out in zip(coord_sets, coords_out):
-            out[lo:lo + block.size] = (coords[j] * w[:, :, None]).sum(axis=1) / w.sum(axis=1, keepdims=True)
+        labels, coords = _vote(nn, z[rest[lo:lo + _BLOCK]], label_sets, coord_sets)
+        for got, out in zip(labels + coords, labels_out + coords_out):
+            out[lo:lo + got.shape[0]] = got
     return labels_out, coords_out
+
+
+def _neighbours(points: np.ndarray, n_neighbors: int):
+    """Exact nearest-neighbour search over `points` (scikit-learn, brute force)."""
+    from sklearn.neighbors import NearestNeighbors
+
+    return NearestNeighbors(n_neighbors=min(n_neighbors, points.shape[0]), algorithm="brute").fit(points)
+
+
+def _vote(nn, query: np.ndarray, label_sets: list[np.ndarray], coord_sets: list[np.ndarray]):
+    """For each row of `query`: the label its nearest fit rows (`nn`) vote for, weighted by
+    inverse distance, in each labelling of `label_sets`; and the distance-weighted mean of
+    their coordinates in each of `coord_sets`. Row by row: a row's result does not depend
+    on the other rows of the block."""
+    d, j = nn.kneighbors(query)
+    w = 1.0 / (d + 1e-6 * (d[:, -1:] + 1e-12))
+    labels_out, coords_out = [], []
+    for labels in label_sets:
+        lab = labels[j] + 1                               # 0 = noise
+        votes = np.zeros((query.shape[0], int(labels.max(initial=NOISE)) + 2))
+        np.add.at(votes, (np.arange(query.shape[0])[:, None], lab), w)
+        labels_out.append(votes.argmax(axis=1) - 1)
+    for coords in coord_sets:
+        coords_out.append(((coords[j] * w[:, :, None]).sum(axis=1) / w.sum(axis=1, keepdims=True))
+                          .astype(np.float32))
+    return labels_out, coords_out
+
+
+@dataclass(frozen=True, repr=False)
+class Fitted:
+    """What the fit on the (sampled) distinct rows leaves for placing every other row.
+
+    ``mean, axes`` are the PCA, ``zf`` the fitted rows' PCA coordinates, ``vectors``
+    their embeddings; ``labels`` maps "region"/"error_mode" to the fitted rows' labels,
+    ``coords`` and ``map_xy`` are their layout and map coordinates."""
+
+    mean: np.ndarray
+    axes: np.ndarray
+    metric: str
+    n_neighbors: int
+    vectors: np.ndarray
+    zf: np.ndarray
+    labels: Mapping[str, np.ndarray]
+    coords: np.ndarray
+    map_xy: np.ndarray | None
+
+    def place(self, x: np.ndarray, nn=None):
+        """(labels per key, coords, map or None) of rows `x` placed by their nearest fitted
+        rows in the PCA space, as `cluster_slices` places the unsampled rows."""
+        keys = list(self.labels)
+        coord_sets = [self.coords] + ([self.map_xy] if self.map_xy is not None else [])
+        nn = nn if nn is not None else _neighbours(self.zf, self.n_neighbors)
+        labels = {k: np.empty(x.shape[0], dtype=np.int64) for k in keys}
+        coords = np.empty((x.shape[0], self.coords.shape[1]), dtype=np.float32)
+        map_xy = np.empty((x.shape[0], 2), dtype=np.float32) if self.map_xy is not None else None
+        for lo in range(0, x.shape[0], _BLOCK):
+            z = _project(x[lo:lo + _BLOCK], self.mean, self.axes, self.metric)
+            got_labels, got_coords = _vote(nn, z, [self.labels[k] for k in keys], coord_sets)
+            for k, v in zip(keys, got_labels):
+                labels[k][lo:lo + z.shape[0]] = v
+            coords[lo:lo + z.shape[0]] = got_coords[0]
+            if map_xy is not None:
+                map_xy[lo:lo + z.shape[0]] = got_coords[1]
+        return labels, coords, map_xy
 
 
 def _sample(err: np.ndarray, size: int, max_errors: int, rng) -> np.ndarray:
@@ -538,6 +597,7 @@ def cluster_slices(
     init: str = "pca",
     items=None,
     progress: bool | None = None,
+    source=None,
 ) -> ClusterResult:
     """Regions and error modes of an eval table's embeddings, as slices.
 
@@ -578,6 +638,9 @@ def cluster_slices(
         The table's items (`find_slices` has them); built here when not given.
     progress : bool, optional
         Show progress bars; default only for tables of 20,000 rows or more.
+    source : optional
+        Where the embedding rows live: None for ``table.embeddings`` (`MemoryRows`); the
+        Dask engine passes its partitions (`slicefind.distributed`).
 
     Returns
     -------
@@ -604,7 +667,7 @@ def cluster_slices(
     >>> sorted(sl.rows.size for sl in result.slices)
     [200, 200, 200]
     """
-    if table.embeddings is None:
+    if table.embeddings is None and source is None:
         raise SlicefindValueError("cluster_slices needs embeddings: pass embeddings= to find_slices.")
     _check_options(strategy, metric, init,
                    {"n_neighbors": (n_neighbors, 2), "cluster_dims": (cluster_dims, 2),
@@ -616,10 +679,9 @@ def cluster_slices(
                    sample_above, sample_size)
     _require("umap", package="umap-learn", needed_for="embeddings=")
     _require("hdbscan", package="hdbscan", needed_for="embeddings=")
-    from slicefind.describe import describe_rows
-
     from tqdm.auto import tqdm
 
+    source = source if source is not None else MemoryRows(table.embeddings)
     n = table.n_rows
     if progress is None:
         progress = n >= 20_000
@@ -640,10 +702,8 @@ def cluster_slices(
     seeded = random_state is not None
     rng = np.random.default_rng(random_state)
     seed_layout, seed_map = (int(s) for s in rng.integers(0, 2**31 - 1, 2))
-    x = table.embeddings
-    first, inverse = _distinct(x)
+    first, err_any = source.distinct(table.errors)
     n_distinct = first.size
-    err_any = np.bincount(inverse, weights=table.errors, minlength=n_distinct) > 0
     lap("distinct")
 
     params = dict(strategy=strategy, metric=metric, n_neighbors=n_neighbors, cluster_dims=cluster_dims,
@@ -663,10 +723,11 @@ def cluster_slices(
     sampled = n_distinct > sample_above
     cap = sample_size // 4 if max_sample_errors is None else max_sample_errors
     fit = _sample(err_any, sample_size, cap, rng) if sampled else np.arange(n_distinct, dtype=np.intp)
-    z = _pca(x, first, fit, PCA_DIMS, metric)
+    xf = source.vectors(first[fit])
+    mean, axes = _pca_axes(xf, PCA_DIMS, metric)
+    zf = _project(xf, mean, axes, metric)
     lap("pca")
 
-    zf = z[fit]
     idx, dist = _knn(zf, n_neighbors)
     graph = _fuzzy_graph(idx, dist)
     small = min_cluster_size or default_min_cluster_size(fit.size, share=0.005, floor=15)
@@ -715,49 +776,18 @@ def cluster_slices(
         sizes["error_mode"] = mcs_e
     lap("hdbscan_error_modes")
 
-    # every distinct row: the fitted ones directly, the rest by their nearest fitted rows
-    labels_d = {k: np.empty(n_distinct, dtype=np.int64) for k in labels_f}
-    coords_d = np.empty((n_distinct, cluster_dims), dtype=np.float32)
-    map_d = np.empty((n_distinct, 2), dtype=np.float32) if make_map else None
-    for k, v in labels_f.items():
-        labels_d[k][fit] = v
-    coords_d[fit] = coords_f
-    if make_map:
-        map_d[fit] = map_f
-    if sampled:
-        rest = np.setdiff1d(np.arange(n_distinct), fit, assume_unique=True)
-        keys = list(labels_f)
-        coord_sets = [coords_f] + ([map_f] if make_map else [])
-        got_labels, got_coords = _assign(z, fit, rest, [labels_f[k] for k in keys], coord_sets,
-                                         n_neighbors, progress)
-        for k, v in zip(keys, got_labels):
-            labels_d[k][rest] = v
-        coords_d[rest] = got_coords[0]
-        if make_map:
-            map_d[rest] = got_coords[1]
+    # every row: copies of fitted rows directly, the others by their nearest fitted rows
+    fitted = Fitted(mean=mean, axes=axes, metric=metric, n_neighbors=n_neighbors, vectors=xf,
+                    zf=zf, labels=labels_f, coords=coords_f, map_xy=map_f)
+    labels, coords, map_xy = source.place(fitted, fit, progress)
     lap("assign")
-
-    labels = {k: v[inverse] for k, v in labels_d.items()}
-    coords = coords_d[inverse]
-    map_xy = map_d[inverse] if make_map else None
 
     if items is None:
         from slicefind.items import build_items
         from slicefind.slices import default_min_rows
 
         items = build_items(table, min_rows=default_min_rows(n), min_errors=1) if table.kinds else None
-    slices = []
-    for source, key in (("region", "region"), ("error_mode", "error_mode")):
-        if key not in labels:
-            continue
-        lab = labels[key]
-        for c in range(int(lab.max(initial=NOISE)) + 1):
-            rows = np.flatnonzero(lab == c).astype(np.intp)
-            if rows.size == 0:
-                continue
-            text = describe_rows(table, rows, items=items)
-            slices.append(Slice(source=source, description=text, rows=rows, key=f"{key}:{c}",
-                                extra={"cluster": c}))
+    slices = _label_slices(table, labels, items, source.inside(labels))
     lap("describe")
     steps.close()
 
@@ -768,6 +798,79 @@ def cluster_slices(
         noise_share={k: float(np.mean(v == NOISE)) for k, v in labels.items()})
     return ClusterResult(slices=tuple(slices), labels=labels, map_xy=map_xy, coords=coords,
                          diagnostics=diagnostics, params=params)
+
+
+def _label_slices(table: EvalTable, labels: Mapping[str, np.ndarray], items, inside) -> list[Slice]:
+    """One Slice per cluster of each labelling, described by `describe_rows` (with the
+    per-cluster item counts `inside[key]` when the items' bitsets live elsewhere)."""
+    from slicefind.describe import describe_rows
+
+    slices = []
+    for source, key in (("region", "region"), ("error_mode", "error_mode")):
+        if key not in labels:
+            continue
+        lab = labels[key]
+        for c in range(int(lab.max(initial=NOISE)) + 1):
+            rows = np.flatnonzero(lab == c).astype(np.intp)
+            if rows.size == 0:
+                continue
+            counts = None if inside is None else inside[key][:, c]
+            text = describe_rows(table, rows, items=items, inside=counts)
+            slices.append(Slice(source=source, description=text, rows=rows, key=f"{key}:{c}",
+                                extra={"cluster": c}))
+    return slices
+
+
+class MemoryRows:
+    """The embedding rows of an in-memory table, for `cluster_slices`.
+
+    A source of rows answers four questions: `distinct` (the first row of each distinct
+    vector, in row order, and whether any copy is an error), `vectors` (the embeddings of
+    some rows), `place` (labels and coordinates of every row once the fit is done) and
+    `inside` (per-cluster item counts, or None to count on the items' bitsets). The Dask
+    engine's source (`slicefind.distributed`) answers them partition by partition."""
+
+    def __init__(self, x: np.ndarray):
+        self.x = x
+        self.first = self.inverse = None
+
+    def distinct(self, errors: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        self.first, self.inverse = _distinct(self.x)
+        err_any = np.bincount(self.inverse, weights=errors, minlength=self.first.size) > 0
+        return self.first, err_any
+
+    def vectors(self, rows: np.ndarray) -> np.ndarray:
+        return self.x[rows]
+
+    def place(self, fitted: Fitted, fit: np.ndarray, progress: bool):
+        from tqdm.auto import tqdm
+
+        n_distinct = self.first.size
+        labels_d = {k: np.empty(n_distinct, dtype=np.int64) for k in fitted.labels}
+        coords_d = np.empty((n_distinct, fitted.coords.shape[1]), dtype=np.float32)
+        map_d = np.empty((n_distinct, 2), dtype=np.float32) if fitted.map_xy is not None else None
+        for k, v in fitted.labels.items():
+            labels_d[k][fit] = v
+        coords_d[fit] = fitted.coords
+        if map_d is not None:
+            map_d[fit] = fitted.map_xy
+        rest = np.setdiff1d(np.arange(n_distinct), fit, assume_unique=True)
+        if rest.size:
+            nn = _neighbours(fitted.zf, fitted.n_neighbors)
+            blocks = range(0, rest.size, _BLOCK)
+            for lo in tqdm(blocks, desc="assigning rows to clusters", disable=not progress, leave=False):
+                block = rest[lo:lo + _BLOCK]
+                got_labels, got_coords, got_map = fitted.place(self.x[self.first[block]], nn)
+                for k, v in got_labels.items():
+                    labels_d[k][block] = v
+                coords_d[block] = got_coords
+                if map_d is not None:
+                    map_d[block] = got_map
+        labels = {k: v[self.inverse] for k, v in labels_d.items()}
+        return labels, coords_d[self.inverse], None if map_d is None else map_d[self.inverse]
+
+    def inside(self, labels) -> None:
+        return None
 
 
 def _wanted(key: str, strategy: str) -> bool:

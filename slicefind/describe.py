@@ -49,21 +49,26 @@ def _value_text(value) -> str:
 
 
 def enriched_items(table: EvalTable, rows: np.ndarray, *, items, top: int = 5,
-                   max_per_column: int = 2, exclude_texts=()) -> pd.DataFrame:
+                   max_per_column: int = 2, exclude_texts=(), inside=None) -> pd.DataFrame:
     """Items most over-represented in `rows` (positions among the analysed rows).
+
+    ``inside`` (optional) gives each item's row count within `rows`, for items whose
+    bitsets are not in this process (the Dask engine counts them on the workers).
 
     Ranks items by the gain in share, ``slice_share - overall_share``, and keeps those
     with ``lift = slice_share / overall_share > 1``, at most `max_per_column` per column.
     Columns: ``item, column, n_rows, slice_share, overall_share, lift``.
     """
     columns = ["item", "column", "n_rows", "slice_share", "overall_share", "lift"]
-    if items is None or len(items) == 0 or rows.size == 0:
+    if items is None or len(items) == 0 or rows.size == 0 or (items.bits is None and inside is None):
         return pd.DataFrame({c: pd.Series(dtype=object if c in ("item", "column") else float)
                              for c in columns})
-    mask = np.zeros(table.n_rows, dtype=bool)
-    mask[rows] = True
-    packed = bitset.pack(mask)[0]
-    inside = np.bitwise_count(items.bits & packed).sum(axis=1, dtype=np.int64)
+    if inside is None:
+        mask = np.zeros(table.n_rows, dtype=bool)
+        mask[rows] = True
+        packed = bitset.pack(mask)[0]
+        inside = np.bitwise_count(items.bits & packed).sum(axis=1, dtype=np.int64)
+    inside = np.asarray(inside, dtype=np.int64)
     slice_share = inside / rows.size
     overall = items.n_rows / table.n_rows
     lift = slice_share / overall
@@ -252,19 +257,19 @@ def _confusion_text(conf: pd.DataFrame, n_errors: int) -> str:
     return ", ".join(parts)
 
 
-def describe_rows(table: EvalTable, rows: np.ndarray, *, items=None, exclude_texts=()) -> str:
+def describe_rows(table: EvalTable, rows: np.ndarray, *, items=None, exclude_texts=(), inside=None) -> str:
     """One line that says what the rows (positions among the analysed rows) share.
 
     Up to two metadata items held by at least half of the rows and at least 1.5 times
     as common as overall (or "no metadata value stands out" when items were given and
     none qualifies), a dominant true label (same test), the dominant confusions, then size
     and error rate: ``71% label_stock = glossy, mostly 4 -> 9; 412 rows, 38% errors``.
-    The slice id is not part of it.
+    The slice id is not part of it. ``inside``: as in `enriched_items`.
     """
     rows = np.asarray(rows, dtype=np.intp)
     parts = []
     enriched = enriched_items(table, rows, items=items, top=5, max_per_column=1,
-                              exclude_texts=exclude_texts)
+                              exclude_texts=exclude_texts, inside=inside)
     for text, share, lift in enriched[["item", "slice_share", "lift"]].itertuples(index=False):
         if share >= SUMMARY_MIN_SHARE and lift >= SUMMARY_MIN_LIFT and len(parts) < 2:
             parts.append(f"{_percent(share)} {text}")

@@ -351,18 +351,23 @@ def build_eval_table(
         raise SlicefindValueError(msg)
 
     emb = None
+    emb_columns = embedding_columns(embeddings, data.columns)
     if embeddings is not None:
+        if emb_columns:
+            embeddings = vectors_of(data, emb_columns)
         emb = _check_embeddings(embeddings, len(data))
         emb = emb if keep.all() else emb[keep]
 
-    not_mined = set(exclude) | set(used.values()) | ({id_column} if id_column else set())
+    not_mined = (set(exclude) | set(used.values()) | ({id_column} if id_column else set())
+                 | set(emb_columns))
     view = data.iloc[positions] if not keep.all() else data
     kinds: dict[str, str] = {}
     skipped: dict[str, str] = {}
     for column in data.columns:
         if column in not_mined:
-            skipped[column] = "excluded" if column in exclude else ("id column" if column == id_column
-                                                                    else f"{_role(used, column)} column")
+            skipped[column] = ("excluded" if column in exclude else "id column" if column == id_column
+                               else "embeddings column" if column in emb_columns
+                               else f"{_role(used, column)} column")
             continue
         _check_hashable(data, column)
         kind, reason = _column_kind(view[column], len(view))
@@ -389,6 +394,47 @@ def build_eval_table(
 
 def _role(used: Mapping[str, str], column: str) -> str:
     return next(role for role, col in used.items() if col == column)
+
+
+def embedding_columns(embeddings, columns) -> tuple[str, ...]:
+    """The columns of data named by ``embeddings=`` (one vector column, or one column per
+    dimension); () when embeddings is an array. Unknown names get a clear error."""
+    if isinstance(embeddings, str):
+        names = (embeddings,)
+    elif (isinstance(embeddings, (list, tuple)) and embeddings
+          and all(isinstance(c, str) for c in embeddings)):
+        names = tuple(embeddings)
+    else:
+        return ()
+    for name in names:
+        if name not in columns:
+            msg = f"embeddings names {name!r}, which is not a column of data.{_suggest(name, columns)}"
+            raise SlicefindValueError(msg)
+    return names
+
+
+def vectors_of(frame: pd.DataFrame, names: tuple[str, ...], where: str = "") -> np.ndarray:
+    """The (len(frame), d) embeddings held in `names`: one column of vectors (lists or
+    arrays, as Parquet list columns load) or one numeric column per dimension."""
+    values = frame[names[0]].to_numpy()
+    if len(names) > 1 or (values.dtype != object and values.dtype.kind in "fiub"):
+        out = frame[list(names)].to_numpy()
+    elif len(values) == 0:
+        return np.zeros((0, 0))
+    else:
+        lengths = np.fromiter((np.size(v) if v is not None else 0 for v in values), np.int64, len(values))
+        if (lengths != lengths[0]).any():
+            row = int(np.flatnonzero(lengths != lengths[0])[0])
+            msg = (f"embeddings column {names[0]!r} holds vectors of {lengths[0]} and {lengths[row]} "
+                   f"values (row {row}{where}); every row needs one vector of the same length.")
+            raise SlicefindValueError(msg)
+        out = np.stack([np.asarray(v) for v in values])
+    if out.dtype.kind not in "fiub":
+        first = frame[names[0]].iloc[0]
+        msg = (f"embeddings column{'s' if len(names) > 1 else ''} {', '.join(map(repr, names))} must "
+               f"hold numbers (a vector per row); got values such as {first!r}{where}.")
+        raise SlicefindTypeError(msg)
+    return out
 
 
 def _check_embeddings(embeddings, n_rows: int) -> np.ndarray:

@@ -128,8 +128,13 @@ def _bad(**overrides):
     (lambda f: (f, dict(label="label", prediction="pred",
                         embeddings=np.where(np.arange(240).reshape(60, 4) == 9, np.nan, 0.0))),
      SlicefindValueError, "embeddings holds 1 rows with NaN or inf, first at row 2 (column 1: nan)"),
-    (lambda f: (f, dict(label="label", prediction="pred", embeddings="vectors.npy")), SlicefindTypeError,
-     "embeddings must be a numeric (n_rows, d) array; got str"),
+    (lambda f: (f, dict(label="label", prediction="pred", embeddings="vectors.npy")), SlicefindValueError,
+     "embeddings names 'vectors.npy', which is not a column of data."),
+    (lambda f: (f.assign(vec=[np.zeros(3)] * 59 + [np.zeros(2)]), dict(label="label", prediction="pred",
+                                                                        embeddings="vec")),
+     SlicefindValueError, "embeddings column 'vec' holds vectors of 3 and 2 values (row 59)"),
+    (lambda f: (f.assign(vec="abc"), dict(label="label", prediction="pred", embeddings="vec")),
+     SlicefindTypeError, "embeddings column 'vec' must hold numbers (a vector per row); got values such as 'abc'"),
     (lambda f: (f, dict(label="label", prediction=3.5)), SlicefindTypeError,
      "prediction must be a column name or an array-like of length 60; got float"),
 ])
@@ -159,3 +164,21 @@ def test_library_errors_are_value_and_type_errors():
     assert issubclass(sf.SlicefindValueError, ValueError)
     assert issubclass(sf.SlicefindTypeError, TypeError)
     assert issubclass(sf.SlicefindValueError, sf.SlicefindError)
+
+
+def test_embeddings_from_columns_equal_the_array():
+    """embeddings= may name a column of vectors or one column per dimension: the same
+    float array as passing it, and those columns are not mined."""
+    frame = _frame()
+    x = np.random.default_rng(1).normal(size=(60, 3)).astype(np.float32)
+    base = dict(label="label", prediction="pred")
+    from_array = build_eval_table(frame, embeddings=x, **base)
+    one = build_eval_table(frame.assign(vec=list(x)), embeddings="vec", **base)
+    per_dim = build_eval_table(frame.assign(e0=x[:, 0], e1=x[:, 1], e2=x[:, 2]),
+                               embeddings=["e0", "e1", "e2"], **base)
+    for table in (one, per_dim):
+        assert np.array_equal(from_array.embeddings, table.embeddings)
+        assert np.float32 == table.embeddings.dtype
+        assert from_array.kinds == table.kinds
+    assert "embeddings column" == one.skipped["vec"]
+    assert ["embeddings column"] * 3 == [per_dim.skipped[c] for c in ("e0", "e1", "e2")]

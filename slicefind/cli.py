@@ -9,13 +9,17 @@ errors exit 2.
 from __future__ import annotations
 
 import argparse
+import dataclasses
 import os
 import sys
 import time
-from typing import Sequence
+from typing import TYPE_CHECKING, Sequence
 
 import numpy as np
 import pandas as pd
+
+if TYPE_CHECKING:
+    from slicefind.compare import Comparison
 
 __all__ = ["main", "build_parser"]
 
@@ -26,6 +30,7 @@ EXAMPLES = {
   slicefind scan dev.csv --label y --prediction p --embeddings emb.npy --id-column parcel_id --out ws
   slicefind scan scores.csv --loss loss --threshold 0.7 --out ws
   slicefind scan 'logs/*.parquet' --errors wrong --engine dask --out ws
+  slicefind scan logs/ --label y --prediction p --engine dask --embeddings emb --out ws
   slicefind scan logs/ --errors wrong --engine dask --scheduler tcp://10.0.0.5:8786 --out ws""",
     "queue": """examples:
   slicefind queue ws                      # 100 errors, 20 of them from no slice
@@ -75,11 +80,21 @@ class _Step:
         return _Ctx()
 
 
-def _read_table(path: str, argument: str = "DATA") -> pd.DataFrame:
+def _read_table(path, argument: str = "DATA") -> pd.DataFrame:
     """A CSV, TSV or Parquet file as a DataFrame, or a clear error naming the argument."""
-    from slicefind.compare import _read_frame
+    from slicefind.table import SlicefindTypeError, SlicefindValueError
 
-    return _read_frame(path, argument)
+    if not isinstance(path, (str, os.PathLike)):
+        raise SlicefindTypeError(f"{argument} must be a file path; got {type(path).__name__}.")
+    path = os.fspath(path)
+    if not os.path.isfile(path):
+        raise SlicefindValueError(f"{argument} file {path!r} does not exist.")
+    lower = path.lower()
+    if lower.endswith((".parquet", ".pq")):
+        return pd.read_parquet(path)
+    if lower.endswith((".csv", ".csv.gz", ".tsv", ".txt")):
+        return pd.read_csv(path, sep="\t" if lower.endswith(".tsv") else ",")
+    raise SlicefindValueError(f"{argument} file {path!r} must be .csv, .tsv or .parquet.")
 
 
 def _read_embeddings(path: str, id_column: str | None, frame: pd.DataFrame) -> np.ndarray:
@@ -250,15 +265,34 @@ def _read_dask(pattern: str, scheduler: str | None):
     return frame, (Client(scheduler) if scheduler else None)
 
 
+def _dask_embeddings(value: str, frame):
+    """--embeddings with --engine dask: a .npy file (read memory-mapped, sent to the workers
+    partition by partition) or the name of the data's vector column (or several comma-separated
+    columns, one per dimension)."""
+    from slicefind.table import SlicefindValueError
+
+    if os.path.exists(value):
+        if not value.lower().endswith(".npy"):
+            raise SlicefindValueError(f"--embeddings {value!r}: with --engine dask give a .npy file "
+                                      "or name the data's vector column(s).")
+        return np.load(value, mmap_mode="r", allow_pickle=False)
+    names = [v.strip() for v in value.split(",") if v.strip()]
+    missing = [v for v in names if v not in frame.columns]
+    if missing or not names:
+        from slicefind.table import _suggest
+
+        raise SlicefindValueError(f"--embeddings {value!r} is neither a file nor a column of DATA."
+                                  f"{_suggest(missing[0], frame.columns) if missing else ''}")
+    return names[0] if len(names) == 1 else names
+
+
 def cmd_scan(args) -> int:
     client = None
     if args.engine == "dask":
-        if args.embeddings:
-            from slicefind.table import SlicefindValueError
-            raise SlicefindValueError("--embeddings cannot be combined with --engine dask yet.")
         frame, client = _read_dask(args.data, args.scheduler)
-        emb = None
-        label_col = pd.Series(dtype=object)
+        emb = _dask_embeddings(args.embeddings, frame) if args.embeddings else None
+        label_col = pd.Series(dtype=frame.dtypes[args.label]) if args.label in frame.columns else \
+            pd.Series(dtype=object)
     else:
         frame = _read_table(args.data)
         emb = _read_embeddings(args.embeddings, args.id_column, frame) if args.embeddings else None
@@ -349,8 +383,80 @@ def cmd_tally(args) -> int:
     return 0
 
 
+def run_compare(workspace_path, after_path, *, data_path=None, id_column=None,
+                prediction_column=None, out_csv=None) -> Comparison:
+    """`compare` for the command line: new predictions from a file, matched to the scan by id.
+
+    Reads the after file (CSV, TSV or Parquet), matches its rows to the workspace's latest
+    scan by the scan's id column (or ``id_column``), compares with the stored predictions
+    (and the workspace's review categories), and writes the table to ``compare.csv`` in the
+    workspace (and the new slices to ``compare_new_slices.csv`` when ``data_path`` is given).
+    Without an id column the file's rows are taken in order and must number exactly the
+    scanned frame's rows.
+
+    Parameters
+    ----------
+    workspace_path : str or os.PathLike
+        A workspace folder holding a scan.
+    after_path : str or os.PathLike
+        The new predictions: an id column and one prediction column (error flags, when the
+        scan has no labels).
+    data_path : str or os.PathLike, optional
+        The scanned data file; enables the after scan (new slices).
+    id_column : str, optional
+        The id column of the after file; default the scan's.
+    prediction_column : str, optional
+        The prediction column of the after file; default its one column besides the id.
+    out_csv : str or os.PathLike, optional
+        Where to write the table; default ``WORKSPACE/compare.csv``.
+
+    Returns
+    -------
+    Comparison
+        ``params`` add ``matched_by``, ``prediction_column``, ``after_path``, ``out_csv``.
+
+    Raises
+    ------
+    SlicefindValueError
+        When ids are missing from the file, duplicated in it, or not rows of the scan (each
+        with examples), and for any bad input `compare` refuses.
+    """
+    from slicefind.compare import COMPARE_CSV, NEW_SLICES_CSV, _check_data, compare, match_after
+    from slicefind.table import SlicefindTypeError, SlicefindValueError
+    from slicefind.workspace import DB_NAME, Workspace
+
+    if not isinstance(workspace_path, (str, os.PathLike)):
+        raise SlicefindTypeError(f"workspace_path must be a folder path; got {type(workspace_path).__name__}.")
+    folder = os.fspath(workspace_path)
+    if not os.path.isfile(os.path.join(folder, DB_NAME)):
+        msg = f"{folder!r} is not a workspace (no {DB_NAME} in it); run slicefind scan first."
+        raise SlicefindValueError(msg)
+    for name, value in (("id_column", id_column), ("prediction_column", prediction_column)):
+        if value is not None and not isinstance(value, str):
+            raise SlicefindTypeError(f"{name} must be a column name; got {type(value).__name__}.")
+    after = _read_table(after_path, "--after")
+    data = _read_table(data_path, "--data") if data_path is not None else None
+    with Workspace(folder) as ws:
+        found = ws.load_found()
+        if data is not None:
+            _check_data(data, found.eval_table)
+        values, info = match_after(found, after, id_column=id_column,
+                                    prediction_column=prediction_column, data=data)
+        result = compare(ws, after=values, data=data)
+    out = os.fspath(out_csv) if out_csv is not None else os.path.join(folder, COMPARE_CSV)
+    result.table.to_csv(out, index=False)
+    written = [out]
+    if data is not None:
+        new_path = os.path.join(os.path.dirname(os.path.abspath(out)), NEW_SLICES_CSV)
+        result.new_slices.to_csv(new_path, index=False)
+        written.append(new_path)
+    params = {**result.params, **info, "after": f"file {os.fspath(after_path)!r}",
+              "after_path": os.fspath(after_path), "out_csv": out, "written": written}
+    return dataclasses.replace(result, params=params)
+
+
 def cmd_compare(args) -> int:
-    from slicefind.compare import format_comparison, run_compare
+    from slicefind.compare import format_comparison
     from slicefind.workspace import Workspace
 
     result = run_compare(args.workspace, args.after, data_path=args.data, id_column=args.id_column,
@@ -463,7 +569,8 @@ def _add_scan_options(p):
     p.add_argument("--error-kind", default="all", choices=("all", "false_positive", "false_negative"))
     p.add_argument("--positive", help="the positive class for --error-kind")
     p.add_argument("--true-class", help="explain only errors on rows of this true class")
-    p.add_argument("--embeddings", metavar="FILE", help="(n, d) vectors: .npy, or .parquet/.csv of numeric columns")
+    p.add_argument("--embeddings", metavar="FILE", help="(n, d) vectors: .npy, or .parquet/.csv of numeric "
+                   "columns; with --engine dask a .npy file or the data's vector column(s), COL[,COL...]")
     p.add_argument("--exclude", nargs="*", default=[], metavar="COL", help="columns never mined")
     p.add_argument("--id-column", metavar="COL", help="the column identifying examples")
     p.add_argument("--show", nargs="*", default=[], metavar="COL", help="columns to carry onto the review sheet")

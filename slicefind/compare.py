@@ -18,7 +18,6 @@ from __future__ import annotations
 
 import inspect
 import math
-import os
 from dataclasses import dataclass, replace
 from typing import Any, Mapping
 
@@ -30,7 +29,7 @@ from slicefind.stats import bh_qvalues, mcnemar_exact, wilson_interval
 from slicefind.table import (SlicefindTypeError, SlicefindValueError, _equal, _error_flags,
                              _suggest)
 
-__all__ = ["Comparison", "compare", "run_compare", "format_comparison", "COMPARE_COLUMNS",
+__all__ = ["Comparison", "compare", "match_after", "format_comparison", "COMPARE_COLUMNS",
            "NEW_SLICE_COLUMNS", "OVERALL", "KINDS", "NEW_JACCARD", "NEW_STATUSES",
            "COMPARE_CSV", "NEW_SLICES_CSV"]
 
@@ -650,22 +649,7 @@ def compare(found_or_workspace, before=None, after=None, *, data=None, categorie
                       after_found=after_found)
 
 
-# --- the command line's entry -------------------------------------------------------------------
-
-
-def _read_frame(path, argument: str) -> pd.DataFrame:
-    """A CSV, TSV or Parquet file as a DataFrame, or a clear error naming the argument."""
-    if not isinstance(path, (str, os.PathLike)):
-        raise SlicefindTypeError(f"{argument} must be a file path; got {type(path).__name__}.")
-    path = os.fspath(path)
-    if not os.path.isfile(path):
-        raise SlicefindValueError(f"{argument} file {path!r} does not exist.")
-    lower = path.lower()
-    if lower.endswith((".parquet", ".pq")):
-        return pd.read_parquet(path)
-    if lower.endswith((".csv", ".csv.gz", ".tsv", ".txt")):
-        return pd.read_csv(path, sep="\t" if lower.endswith(".tsv") else ",")
-    raise SlicefindValueError(f"{argument} file {path!r} must be .csv, .tsv or .parquet.")
+# --- matching a file of new predictions to the scan (the command line's compare) -----------------
 
 
 def _examples(values, n: int = 5) -> str:
@@ -674,9 +658,11 @@ def _examples(values, n: int = 5) -> str:
     return shown + (f" and {more:,} more" if more > 0 else "")
 
 
-def _match_after(found: FoundSlices, after: pd.DataFrame, *, id_column, prediction_column,
+def match_after(found: FoundSlices, after: pd.DataFrame, *, id_column, prediction_column,
                  data: pd.DataFrame | None) -> tuple[np.ndarray, dict[str, Any]]:
-    """The after file's predictions as an array over the user's frame rows, matched by id."""
+    """The new predictions of the frame `after` as an array over the user's frame rows,
+    matched to the scan's rows by the id column (or by order when the scan has none);
+    returns (values, info). The command line's ``compare`` reads `after` from a file."""
     table = found.eval_table
     positions = np.asarray(table.positions, dtype=np.intp)
     n_input = table.n_input_rows
@@ -775,76 +761,6 @@ def _match_after(found: FoundSlices, after: pd.DataFrame, *, id_column, predicti
     info = {"matched_by": f"id column {column!r}", "prediction_column": prediction_column,
             "n_after_rows": len(after), "n_ignored": n_ignored}
     return out, info
-
-
-def run_compare(workspace_path, after_path, *, data_path=None, id_column=None,
-                prediction_column=None, out_csv=None) -> Comparison:
-    """`compare` for the command line: new predictions from a file, matched to the scan by id.
-
-    Reads the after file (CSV, TSV or Parquet), matches its rows to the workspace's latest
-    scan by the scan's id column (or ``id_column``), compares with the stored predictions
-    (and the workspace's review categories), and writes the table to ``compare.csv`` in the
-    workspace (and the new slices to ``compare_new_slices.csv`` when ``data_path`` is given).
-    Without an id column the file's rows are taken in order and must number exactly the
-    scanned frame's rows.
-
-    Parameters
-    ----------
-    workspace_path : str or os.PathLike
-        A workspace folder holding a scan.
-    after_path : str or os.PathLike
-        The new predictions: an id column and one prediction column (error flags, when the
-        scan has no labels).
-    data_path : str or os.PathLike, optional
-        The scanned data file; enables the after scan (new slices).
-    id_column : str, optional
-        The id column of the after file; default the scan's.
-    prediction_column : str, optional
-        The prediction column of the after file; default its one column besides the id.
-    out_csv : str or os.PathLike, optional
-        Where to write the table; default ``WORKSPACE/compare.csv``.
-
-    Returns
-    -------
-    Comparison
-        ``params`` add ``matched_by``, ``prediction_column``, ``after_path``, ``out_csv``.
-
-    Raises
-    ------
-    SlicefindValueError
-        When ids are missing from the file, duplicated in it, or not rows of the scan (each
-        with examples), and for any bad input `compare` refuses.
-    """
-    from slicefind.workspace import DB_NAME, Workspace
-
-    if not isinstance(workspace_path, (str, os.PathLike)):
-        raise SlicefindTypeError(f"workspace_path must be a folder path; got {type(workspace_path).__name__}.")
-    folder = os.fspath(workspace_path)
-    if not os.path.isfile(os.path.join(folder, DB_NAME)):
-        msg = f"{folder!r} is not a workspace (no {DB_NAME} in it); run slicefind scan first."
-        raise SlicefindValueError(msg)
-    for name, value in (("id_column", id_column), ("prediction_column", prediction_column)):
-        if value is not None and not isinstance(value, str):
-            raise SlicefindTypeError(f"{name} must be a column name; got {type(value).__name__}.")
-    after = _read_frame(after_path, "--after")
-    data = _read_frame(data_path, "--data") if data_path is not None else None
-    with Workspace(folder) as ws:
-        found = ws.load_found()
-        if data is not None:
-            _check_data(data, found.eval_table)
-        values, info = _match_after(found, after, id_column=id_column,
-                                    prediction_column=prediction_column, data=data)
-        result = compare(ws, after=values, data=data)
-    out = os.fspath(out_csv) if out_csv is not None else os.path.join(folder, COMPARE_CSV)
-    result.table.to_csv(out, index=False)
-    written = [out]
-    if data is not None:
-        new_path = os.path.join(os.path.dirname(os.path.abspath(out)), NEW_SLICES_CSV)
-        result.new_slices.to_csv(new_path, index=False)
-        written.append(new_path)
-    params = {**result.params, **info, "after": f"file {os.fspath(after_path)!r}",
-              "after_path": os.fspath(after_path), "out_csv": out, "written": written}
-    return replace(result, params=params)
 
 
 # --- terminal output ----------------------------------------------------------------------------

@@ -108,8 +108,9 @@ import re  # noqa: E402
 import pandas as pd  # noqa: E402
 
 from review_helpers import make_found  # noqa: E402
+from slicefind.cli import run_compare  # noqa: E402
 from slicefind.compare import (COMPARE_COLUMNS, NEW_SLICE_COLUMNS, Comparison, compare,  # noqa: E402
-                               format_comparison, run_compare)
+                               format_comparison)
 from slicefind.queue import build_queue  # noqa: E402
 from slicefind.report import ReportInputs, render_report  # noqa: E402
 from slicefind.slices import find_slices  # noqa: E402

@@ -1,29 +1,49 @@
 """Mining a Dask DataFrame: the counting runs on the workers, everything else on the driver.
 
-Three passes over the partitions, each the same code the in-memory engine runs:
+Passes over the partitions, each the same code the in-memory engine runs. The partitions
+are read spread evenly over the workers' threads, and every later task of a partition
+runs where the partition is:
 
-1. *profile*: per partition, the error flags, each column's dtype, distinct values with
-   their row and error counts, and a bounded random sample of rows (the rows with the
-   smallest seeded random keys, so the sample does not depend on the partitioning);
+0. *rows* (only with ``error_kind=`` or ``true_class=``): the label values of each
+   partition, from which the driver infers and checks ``positive`` as in memory; a task
+   per partition then keeps the rows that kind of error is possible on (the negatives
+   for false positives, the positives for false negatives, the rows of ``true_class``),
+   and every later task reads those kept rows;
+1. *profile*: per partition, the error flags, each column's dtype and distinct values
+   with their row and error counts; the error flags and each column's codes (over the
+   partition's own values: a categorical column's codes as they are, other columns
+   factorized once) stay on the worker for pass 2;
 2. *items*: the driver turns the summed counts into the same candidate items as
-   `items.build_items` (categorical codes over the global sorted values; numeric cut
-   points fitted on the sample, which is every row when the table has at most
-   ``sample_rows`` rows; hour and weekday items); each partition packs the candidates'
-   masks into bitsets that stay in the workers' memory, and returns counts and a hash
-   per candidate, from which the driver keeps and de-duplicates items exactly as the
-   in-memory builder does;
-3. *search*: each level's candidate counts come from `bitset.count_extensions` run on
-   every partition and summed; joining, pruning and scoring stay on the driver
-   (`rules.search_levels`), so both engines give the same rules and counts.
+   `items.build_items` (categorical codes over the global sorted values, leaving out
+   those whose counts already rule them out; hour and weekday items); each partition
+   packs the candidates' masks into bitsets that stay in the workers' memory and
+   returns their counts. The driver keeps and de-duplicates items exactly as the
+   in-memory builder does; only candidates of one column with equal counts need their
+   rows compared, by a hash computed on the workers. When a numeric column is mined,
+   a *sample* pass first gathers a simple random sample of rows to fit the cut points
+   on (every row gets a random key seeded by ``random_state`` and its partition's
+   number; the ``sample_rows`` smallest keys of the whole table win, every row when it
+   has no more), holding only the numeric columns and the columns of the worst
+   categorical items;
+3. *search*: each worker's partitions form one block; each level's candidate counts
+   come from `bitset.count_extensions` run on every block and summed; joining, pruning
+   and scoring stay on the driver (`rules.search_levels`), so both engines give the
+   same rules and counts.
 
 Dask retries the tasks of a worker that dies, and every task here is a pure function
-of its partition, so a lost worker does not change the result.
+of its partition (or of the results of earlier tasks on that partition), so a lost
+worker does not change the result. The seconds each phase took are logged at DEBUG
+level on the ``slicefind.distributed`` logger (and kept in `DaskMined.seconds`).
 """
 from __future__ import annotations
 
 import hashlib
-from dataclasses import dataclass
-from typing import Any, Sequence
+import logging
+import os
+import sys
+import time
+from dataclasses import dataclass, field
+from typing import Any, Mapping, Sequence
 
 import numpy as np
 import pandas as pd
@@ -34,8 +54,9 @@ from slicefind.items import (CONDITIONAL_ITEMS, Item, ItemSet, _Builder, categor
                              numeric_values)
 from slicefind.rules import search_levels
 from slicefind.stats import fisher_greater
-from slicefind.table import (CATEGORICAL, DATETIME, MAX_INT_LEVELS, NUMERIC, EvalTable,
-                             SlicefindTypeError, SlicefindValueError, _suggest, column_kind)
+from slicefind.table import (CATEGORICAL, DATETIME, ERROR_KINDS, MAX_INT_LEVELS, NUMERIC,
+                             EvalTable, SlicefindTypeError, SlicefindValueError, _equal, _suggest,
+                             column_kind)
 
 __all__ = ["is_dask_frame", "DaskMined", "mine_dask", "SAMPLE_ROWS"]
 
@@ -44,75 +65,255 @@ SAMPLE_ROWS = 200_000
 #: distinct values a partition reports for a float column before it counts as "many"
 _FLOAT_DISTINCT_CAP = 1_000
 
+_log = logging.getLogger(__name__)
+
 
 def is_dask_frame(data) -> bool:
     """True for a dask DataFrame (checked without importing dask)."""
     return type(data).__module__.split(".")[0] in ("dask", "dask_expr")
 
 
+# ---------------------------------------------------------------------------------------
+# partition tasks (pure functions of a partition and of earlier results on it)
+
+def _check_complete(part: pd.DataFrame, how: dict) -> None:
+    """Labels and predictions of one partition have no missing values (as in memory)."""
+    for column in (how["label"], how["prediction"]):
+        if part[column].isna().any():
+            raise SlicefindValueError(f"column {column!r} has missing values in a partition; "
+                                      "labels and predictions must be complete.")
+
+
 def _errors_of(part: pd.DataFrame, how: dict) -> np.ndarray:
     """The error flags of one partition, as `table.build_eval_table` derives them."""
     if how["kind"] == "label":
-        label, pred = part[how["label"]], part[how["prediction"]]
-        if label.isna().any() or pred.isna().any():
-            which = how["label"] if label.isna().any() else how["prediction"]
-            raise SlicefindValueError(f"column {which!r} has missing values in a partition; "
-                                      "labels and predictions must be complete.")
-        return (label.to_numpy() != pred.to_numpy()).astype(bool)
+        _check_complete(part, how)
+        return ~_equal(part[how["label"]].to_numpy(), part[how["prediction"]].to_numpy())
     if how["kind"] == "errors":
         flags = part[how["errors"]]
+        if flags.dtype == bool:
+            return flags.to_numpy(dtype=bool)
         bad = ~flags.isin([True, False, 0, 1])
         if bad.any():
             value = flags[bad].iloc[0]
             raise SlicefindValueError(f"errors column {how['errors']!r} must hold booleans or 0/1; "
                                       f"a partition holds {value!r}.")
         return flags.to_numpy().astype(bool)
-    return pd.to_numeric(part[how["loss"]]).to_numpy(dtype=float) > how["threshold"]
+    try:
+        loss = pd.to_numeric(part[how["loss"]]).to_numpy(dtype=float)
+    except (TypeError, ValueError):
+        raise SlicefindTypeError(f"loss column {how['loss']!r} must be numeric; a partition holds "
+                                 f"values such as {part[how['loss']].iloc[0]!r}.") from None
+    if not np.all(np.isfinite(loss)):
+        value = loss[~np.isfinite(loss)][0]
+        raise SlicefindValueError(f"loss column {how['loss']!r} has a non-finite value {value!r} in a "
+                                  "partition; losses must be finite numbers.")
+    return loss > how["threshold"]
 
 
-def _profile(part: pd.DataFrame, index: int, how: dict, columns: Sequence[str], seed: int,
-             sample_rows: int) -> dict:
-    """Pass 1 on one partition: schema, errors, per-column distinct values, a sample."""
-    schema = {c: str(part[c].dtype) for c in part.columns}
-    needed = list(columns) + [v for k, v in how.items() if k in ("label", "prediction", "errors", "loss")]
-    if any(c not in part.columns for c in needed):
-        return {"index": index, "n": len(part), "schema": schema, "incomplete": True}
-    errors = _errors_of(part, how)
-    out: dict[str, Any] = {"index": index, "n": len(part), "schema": schema,
-                           "n_errors": int(errors.sum()), "columns": {}}
-    for column in columns:
-        series = part[column]
-        info: dict[str, Any] = {"dtype": series.dtype, "missing": int(series.isna().sum()),
-                                "missing_errors": int((series.isna().to_numpy() & errors).sum())}
-        if pd.api.types.is_float_dtype(series.dtype) and series.nunique() > _FLOAT_DISTINCT_CAP:
-            info["many"] = True
-        elif not pd.api.types.is_datetime64_any_dtype(series.dtype):
-            codes, uniques = pd.factorize(series, sort=True, use_na_sentinel=True)
-            info["uniques"] = uniques
-            info["counts"] = np.bincount(codes[codes >= 0], minlength=len(uniques))
-            info["error_counts"] = np.bincount(codes[(codes >= 0) & errors], minlength=len(uniques))
-        else:
-            info["uniques"] = pd.Index(series.dropna().unique())
-        out["columns"][column] = info
-    keys = np.random.default_rng([seed, index]).random(len(part))
-    take = np.argsort(keys, kind="stable")[:sample_rows]
-    sample = part.iloc[take][list(columns)].reset_index(drop=True)
-    sample["__error__"] = errors[take]
-    sample["__key__"] = keys[take]
-    out["sample"] = sample
+def _has_columns(part: pd.DataFrame, columns: Sequence[str], how: dict) -> bool:
+    """Whether the partition holds every column read (the schema check names what is not)."""
+    used = [v for k, v in how.items() if k in ("label", "prediction", "errors", "loss")]
+    return all(c in part.columns for c in list(columns) + used)
+
+
+def _label_classes(part: pd.DataFrame, index: int, how: dict, columns: Sequence[str]) -> dict:
+    """Pass 0 on one partition: schema, the label values present, the rows of true_class."""
+    out: dict[str, Any] = {"index": index, "n": len(part),
+                           "schema": {c: str(part[c].dtype) for c in part.columns}}
+    if not _has_columns(part, columns, how):
+        out["incomplete"] = True
+        return out
+    _check_complete(part, how)             # over every row, before any is left out
+    label = part[how["label"]].to_numpy()
+    out["classes"] = pd.unique(pd.Series(label, dtype=object))
+    if how["true_class"] is not None:
+        out["n_true_class"] = int(_equal(label, np.full(len(label), how["true_class"], dtype=object)).sum())
     return out
 
 
-def _candidates_masks(part: pd.DataFrame, spec: list) -> list[np.ndarray]:
-    """The masks of every candidate item of `spec`, in order, on one partition."""
+def _keep_mask(part: pd.DataFrame, how: dict) -> np.ndarray:
+    """The rows of one partition that error_kind=/true_class= analyse (as build_eval_table keeps them)."""
+    label = part[how["label"]].to_numpy()
+    keep = np.ones(len(part), dtype=bool)
+    if how["error_kind"] != "all":
+        is_pos = _equal(label, np.full(len(label), how["positive"], dtype=object))
+        keep &= ~is_pos if how["error_kind"] == "false_positive" else is_pos
+    if how["true_class"] is not None:
+        keep &= _equal(label, np.full(len(label), how["true_class"], dtype=object))
+    return keep
+
+
+def _analysed(part: pd.DataFrame, how: dict) -> pd.DataFrame:
+    """The kept rows of one partition (every later task reads these)."""
+    return part.iloc[np.flatnonzero(_keep_mask(part, how))]
+
+
+def _kept(part: pd.DataFrame, how: dict) -> dict:
+    """The kept rows of one partition, packed, and its number of rows."""
+    return {"n": len(part), "keep": bitset.pack(_keep_mask(part, how))[0]}
+
+
+class _Buffers:
+    """Two reusable boolean row buffers of one partition.
+
+    A Dask nanny starts its workers with ``MALLOC_TRIM_THRESHOLD_=65536``, which makes
+    every large temporary a fresh mapping of zeroed pages. With it, packing the item
+    masks of a 1M-row partition (146 candidates) took 0.13-0.55 s when each mask was a
+    new array and 0.06 s written into these two buffers.
+    """
+
+    def __init__(self, n: int):
+        self.n = n
+        self._mask = self._other = None
+
+    def mask(self, n: int) -> np.ndarray:
+        if n != self.n:                    # (error rows: small, allocated as needed)
+            return np.empty(n, dtype=bool)
+        if self._mask is None:
+            self._mask = np.empty(n, dtype=bool)
+        return self._mask
+
+    def other(self, n: int) -> np.ndarray:
+        if n != self.n:
+            return np.empty(n, dtype=bool)
+        if self._other is None:
+            self._other = np.empty(n, dtype=bool)
+        return self._other
+
+
+#: columns with at most this many values are counted and masked value by value (no temporaries)
+_FEW_VALUES = 32
+
+
+def _code_counts(codes: np.ndarray, n_values: int, buffers: _Buffers) -> np.ndarray:
+    """Rows per code, missing (-1) first: ``counts[0]`` missing, ``counts[k + 1]`` code k."""
+    if n_values > _FEW_VALUES:
+        return np.bincount(codes.astype(np.intp) + 1, minlength=n_values + 1)
+    out = np.empty(n_values + 1, dtype=np.int64)
+    buf = buffers.mask(codes.size)
+    for k in range(-1, n_values):
+        out[k + 1] = np.count_nonzero(np.equal(codes, k, out=buf))
+    return out
+
+
+def _select_into(codes: np.ndarray, selected: tuple[int, ...], buffers: _Buffers) -> np.ndarray:
+    """The rows whose code is in `selected`, written into a reused buffer (valid until the next call)."""
+    out = buffers.mask(codes.size)
+    if not selected:
+        out[:] = False
+    elif len(selected) > _FEW_VALUES:
+        out[:] = np.isin(codes, selected)
+    else:
+        np.equal(codes, selected[0], out=out)
+        other = buffers.other(codes.size)
+        for k in selected[1:]:
+            np.bitwise_or(out, np.equal(codes, k, out=other), out=out)
+    return out
+
+
+def _pack_into(row: np.ndarray, mask: np.ndarray) -> int:
+    """Pack `mask` into the zeroed uint64 bitset `row` (the layout of `bitset.pack`);
+    returns its number of rows."""
+    if sys.byteorder == "little":
+        packed = np.packbits(mask, bitorder="little")
+        row.view(np.uint8)[:packed.size] = packed
+    else:
+        row[:] = bitset.pack(mask)[0]
+    return int(np.count_nonzero(mask))
+
+
+def _small_codes(codes: np.ndarray, n_values: int) -> np.ndarray:
+    """Codes (-1 for missing) in the narrowest signed integer type that holds them."""
+    for dtype in (np.int8, np.int16, np.int32):
+        if n_values < np.iinfo(dtype).max:
+            return codes.astype(dtype, copy=False)
+    return codes
+
+
+def _profile(part: pd.DataFrame, index: int, how: dict, columns: Sequence[str]) -> dict:
+    """Pass 1 on one partition: schema, errors, per-column distinct values and counts.
+
+    ``summary`` goes to the driver; ``errors`` and ``codes`` (column -> codes and the
+    values they index) stay on the worker for the item pass.
+    """
+    schema = {c: str(part[c].dtype) for c in part.columns}
+    if not _has_columns(part, columns, how):
+        return {"summary": {"index": index, "n": len(part), "schema": schema, "incomplete": True}}
+    errors = _errors_of(part, how)
+    infos: dict[str, Any] = {}
+    codes_of: dict[str, tuple] = {}
+    buffers = _Buffers(len(part))
+    for column in columns:
+        series = part[column]
+        dtype = series.dtype
+        info: dict[str, Any] = {"dtype": dtype}
+        if isinstance(dtype, pd.CategoricalDtype):
+            # codes over the partition's categories, as they are: no re-encoding
+            codes = np.asarray(series.cat.codes)
+            n_cat = len(dtype.categories)
+            counts = _code_counts(codes, n_cat, buffers)
+            error_counts = _code_counts(codes[errors], n_cat, buffers)
+            info.update(categories=dtype.categories, counts=counts[1:], error_counts=error_counts[1:],
+                        missing=int(counts[0]), missing_errors=int(error_counts[0]))
+            codes_of[column] = (codes, dtype.categories)
+        else:
+            missing = series.isna().to_numpy()
+            info.update(missing=int(missing.sum()), missing_errors=int((missing & errors).sum()))
+            if pd.api.types.is_float_dtype(dtype) and series.nunique() > _FLOAT_DISTINCT_CAP:
+                info["many"] = True
+            elif not pd.api.types.is_datetime64_any_dtype(dtype):
+                codes, uniques = pd.factorize(series, sort=True, use_na_sentinel=True)
+                info["uniques"] = uniques
+                info["counts"] = np.bincount(codes[codes >= 0], minlength=len(uniques))
+                info["error_counts"] = np.bincount(codes[(codes >= 0) & errors], minlength=len(uniques))
+                codes_of[column] = (_small_codes(codes, len(uniques)), uniques)
+            else:               # whether there are 0, 1 or more values is all that is read
+                info["uniques"] = pd.Index(series.dropna().unique()[:2])
+        infos[column] = info
+    summary = {"index": index, "n": len(part), "schema": schema, "n_errors": int(errors.sum()),
+               "columns": infos}
+    return {"summary": summary, "errors": errors, "codes": codes_of}
+
+
+def _summary(profiled: dict) -> dict:
+    """What the driver gathers of a profile."""
+    return profiled["summary"]
+
+
+def _smallest(keys: np.ndarray, k: int) -> np.ndarray:
+    """Positions of the `k` smallest keys in key order, ties by position: the first `k` of a
+    stable argsort, found by partitioning instead of sorting every key."""
+    if k >= keys.size:
+        return np.argsort(keys, kind="stable")
+    kth = np.partition(keys, k - 1)[k - 1]
+    below = np.flatnonzero(keys < kth)
+    take = np.concatenate([below, np.flatnonzero(keys == kth)[:k - below.size]])
+    return take[np.lexsort((take, keys[take]))]
+
+
+def _sample(part: pd.DataFrame, profiled: dict, index: int, columns: Sequence[str], seed: int,
+            sample_rows: int) -> pd.DataFrame:
+    """Sample pass on one partition: the rows with the `sample_rows` smallest seeded keys
+    (all rows when fewer), only `columns`, with their error flag and key."""
+    keys = np.random.default_rng([seed, index]).random(len(part))
+    take = _smallest(keys, sample_rows)
+    sample = part[list(columns)].iloc[take].reset_index(drop=True)
+    sample["__error__"] = profiled["errors"][take]
+    sample["__key__"] = keys[take]
+    return sample
+
+
+def _value_masks(frame: pd.DataFrame, spec: list) -> list[np.ndarray]:
+    """The masks of every candidate item of `spec`, in order, computed from a frame's values."""
     masks = []
     for column, kind, payload in spec:
-        series = part[column]
+        series = frame[column]
         if kind == CATEGORICAL:
             uniques, selections = payload
-            codes = pd.Categorical(series, categories=uniques).codes if len(uniques) else \
+            codes = np.asarray(pd.Categorical(series, categories=uniques).codes) if len(uniques) else \
                 np.full(len(series), -1)
-            masks += [code_mask(np.asarray(codes), sel) for sel in selections]
+            masks += [code_mask(codes, sel) for sel in selections]
         elif kind == NUMERIC:
             masks += [mask for _, mask in numeric_masks(column, numeric_values(series), payload)]
         else:
@@ -120,53 +321,144 @@ def _candidates_masks(part: pd.DataFrame, spec: list) -> list[np.ndarray]:
     return masks
 
 
-def _item_bits(part: pd.DataFrame, how: dict, spec: list) -> dict:
+def _local_selection(lut: np.ndarray, selected: tuple[int, ...]) -> tuple[int, ...]:
+    """The partition's codes of the global codes `selected` (`lut`: local code -> global)."""
+    if selected == (-1,):
+        return selected
+    return tuple(np.flatnonzero(np.isin(lut, selected)).tolist())
+
+
+def _item_bits(part: pd.DataFrame, profiled: dict, spec: list) -> dict:
     """Pass 2 on one partition: candidates packed over all rows and over error rows."""
-    errors = _errors_of(part, how)
-    masks = _candidates_masks(part, spec)
-    n_words, e_words = bitset.n_words(len(part)), bitset.n_words(int(errors.sum()))
-    bits = np.zeros((len(masks), n_words), dtype=np.uint64)
-    error_bits = np.zeros((len(masks), e_words), dtype=np.uint64)
-    for i, mask in enumerate(masks):
-        if len(part):
-            bits[i] = bitset.pack(mask)[0]
-            error_bits[i] = bitset.pack(mask[errors])[0]
-    return {"bits": bits, "error_bits": error_bits, "n": len(part), "errors": errors}
+    errors = profiled["errors"]
+    n, n_err = len(part), int(errors.sum())
+    n_candidates = sum(len(payload[1]) if kind == CATEGORICAL else
+                       (3 * len(payload) if kind == NUMERIC else 32) for _, kind, payload in spec)
+    bits = np.zeros((n_candidates, bitset.n_words(n)), dtype=np.uint64)
+    error_bits = np.zeros((n_candidates, bitset.n_words(n_err)), dtype=np.uint64)
+    n_rows = np.zeros(n_candidates, dtype=np.int64)
+    n_errors = np.zeros(n_candidates, dtype=np.int64)
+    buffers = _Buffers(n)
+    i = 0
+    for column, kind, payload in spec:
+        if kind == CATEGORICAL:
+            uniques, selections = payload
+            codes, local = profiled["codes"][column]
+            lut = pd.Index(uniques).get_indexer(local)
+            error_codes = codes[errors]
+            for sel in selections:
+                here = _local_selection(lut, sel)
+                n_rows[i] = _pack_into(bits[i], _select_into(codes, here, buffers))
+                n_errors[i] = _pack_into(error_bits[i], _select_into(error_codes, here, buffers))
+                i += 1
+            continue
+        if kind == NUMERIC:
+            x = numeric_values(part[column])
+            both = zip(numeric_masks(column, x, payload), numeric_masks(column, x[errors], payload))
+        else:
+            series = part[column]
+            both = zip(datetime_masks(column, series), datetime_masks(column, series[errors]))
+        for (_, mask), (_, error_mask) in both:
+            n_rows[i] = _pack_into(bits[i], mask)
+            n_errors[i] = _pack_into(error_bits[i], error_mask)
+            i += 1
+    return {"bits": bits[:i], "error_bits": error_bits[:i], "n": n, "errors": errors,
+            "n_rows": n_rows[:i], "n_errors": n_errors[:i]}
 
 
 def _item_summary(packed: dict) -> dict:
-    """Counts and a hash of each candidate's rows (equal hashes everywhere = equal rows)."""
-    bits = packed["bits"]
-    return {"n_rows": bitset.popcount(bits) if len(bits) else np.zeros(0, np.int64),
-            "n_errors": bitset.popcount(packed["error_bits"]) if len(bits) else np.zeros(0, np.int64),
-            "hash": [hashlib.blake2b(row.tobytes(), digest_size=8).hexdigest() for row in bits]}
+    """What the driver gathers of an item pass: each candidate's rows and errors."""
+    return {"n_rows": packed["n_rows"], "n_errors": packed["n_errors"]}
 
 
-def _select_bits(packed: dict, keep: np.ndarray) -> dict:
-    """The kept items' bitsets of one partition (what the search counts)."""
-    return {"bits": np.ascontiguousarray(packed["bits"][keep]),
-            "error_bits": np.ascontiguousarray(packed["error_bits"][keep]),
-            "n": packed["n"], "errors": packed["errors"]}
+def _item_hashes(packed: dict, candidates: Sequence[int]) -> list[str]:
+    """A hash of the rows of each of these candidates (equal hashes everywhere = equal rows)."""
+    return [hashlib.blake2b(packed["bits"][c].tobytes(), digest_size=8).hexdigest()
+            for c in candidates]
 
 
-def _count(part_bits: dict, which: str, prefixes, offsets, extensions) -> np.ndarray:
-    """One partition's share of a level's counts."""
-    bits = part_bits["error_bits" if which == "errors" else "bits"]
-    if bits.shape[1] == 0:
-        return np.zeros(len(extensions), dtype=np.int64)
-    return bitset.count_extensions(bits, prefixes, offsets, extensions)
+def _stack_kept(first: dict, second: dict, keep: np.ndarray) -> dict:
+    """The kept candidates of both item passes of one partition, in one array each."""
+    def stack(which):
+        a, b = first[which], second[which]
+        out = np.empty((keep.size, a.shape[1]), dtype=np.uint64)
+        for j, c in enumerate(keep.tolist()):
+            out[j] = a[c] if c < len(a) else b[c - len(a)]
+        return out
+
+    return {"bits": stack("bits"), "error_bits": stack("error_bits"), "n": first["n"],
+            "errors": first["errors"]}
 
 
-def _rule_mask(part_bits: dict, terms: np.ndarray) -> np.ndarray:
-    """One partition's rows of a rule, as booleans."""
-    bits = part_bits["bits"][terms[0]].copy()
-    for t in terms[1:]:
-        bits &= part_bits["bits"][t]
-    return bitset.unpack(bits, part_bits["n"])[0] if part_bits["n"] else np.zeros(0, dtype=bool)
+def _block(rows: np.ndarray, *packed: dict) -> dict:
+    """Several partitions' candidate bitsets, for one task to count (no copy is made).
+
+    Item ``i`` of the search is row ``rows[i]`` of every partition's bitsets.
+    """
+    return {"rows": rows, "bits": [p["bits"] for p in packed],
+            "error_bits": [p["error_bits"] for p in packed],
+            "errors": [bitset.pack(p["errors"])[0] for p in packed]}
+
+
+def _kernel_threads() -> None:
+    """Let numba's parallel kernel use the threads Dask gives a task, not every core.
+
+    A Dask nanny starts its worker with ``OMP_NUM_THREADS=1`` (one core per task thread);
+    the kernel's own threads on top of that oversubscribed the cores: on 2 worker
+    processes x 1 thread on 2 cores, a level of 62k candidates took 0.20 s per 1M-row
+    partition with numba's 2 threads and 0.13 s with 1 thread.
+    """
+    import numba
+
+    limit = os.environ.get("OMP_NUM_THREADS", "")
+    if limit.isdigit() and int(limit) >= 1:
+        numba.set_num_threads(min(int(limit), numba.config.NUMBA_NUM_THREADS))
+
+
+def _count(block: dict, which: str, prefixes, offsets, extensions, engine: str) -> np.ndarray:
+    """One block's share of a level's counts (`engine` chosen for the whole table)."""
+    rows = block["rows"]
+    prefixes, extensions = rows[prefixes], rows[extensions]
+    total = np.zeros(len(extensions), dtype=np.int64)
+    if engine == "numba":
+        bitset._numba_kernels()
+        _kernel_threads()
+    for bits in block["error_bits" if which == "errors" else "bits"]:
+        if bits.shape[1]:
+            total += bitset.count_extensions(bits, prefixes, offsets, extensions, engine=engine)
+    return total
+
+
+def _rule_bits(block: dict, terms: np.ndarray) -> list[np.ndarray]:
+    """The rows of a rule in each partition of a block, packed."""
+    rows = block["rows"][terms]
+    out = []
+    for bits in block["bits"]:
+        got = bits[rows[0]].copy()
+        for r in rows[1:]:
+            got &= bits[r]
+        out.append(got)
+    return out
+
+
+def _block_errors(block: dict) -> list[np.ndarray]:
+    """The error flags of each partition of a block, packed."""
+    return block["errors"]
 
 
 def _gather_column(part: pd.DataFrame, column: str) -> np.ndarray:
     return part[column].to_numpy()
+
+
+# ---------------------------------------------------------------------------------------
+# the driver
+
+def _join_packed(pieces: Sequence[np.ndarray], sizes: Sequence[int]) -> np.ndarray:
+    """One bitset over all rows from per-partition bitsets of `sizes` rows each."""
+    if all(s % bitset.WORD_BITS == 0 for s in sizes[:-1]):      # word-aligned: join the words
+        return np.concatenate([p for p, s in zip(pieces, sizes) if s] or [np.zeros(0, np.uint64)])
+    masks = [bitset.unpack(p, s)[0] for p, s in zip(pieces, sizes) if s]
+    return bitset.pack(np.concatenate(masks) if masks else np.zeros(0, dtype=bool))[0]
 
 
 @dataclass(frozen=True, repr=False)
@@ -177,15 +469,87 @@ class DaskMined:
     items: ItemSet
     counts: Any
     client: Any
-    part_bits: list
+    blocks: list                            # futures of `_block`s
+    block_parts: tuple                      # the partitions of each block, in order
+    block_workers: tuple                    # the worker each block was put on
     n_partitions: int
+    part_rows: tuple = ()                   # analysed rows per partition
+    seconds: Mapping[str, float] = field(default_factory=dict)   # per phase of mine_dask
 
     def rule_bitset(self, terms: np.ndarray) -> np.ndarray:
-        """The packed rows of a rule over all rows (gathered from every partition)."""
-        masks = self.client.gather(self.client.map(_rule_mask, self.part_bits,
-                                                   [np.asarray(terms)] * len(self.part_bits),
-                                                   pure=False))
-        return bitset.pack(np.concatenate(masks))[0]
+        """The packed rows of a rule over all rows (gathered from every block)."""
+        terms = np.asarray(terms)
+        got = _on_blocks(self.client, self.blocks, self.block_workers, _rule_bits, terms)
+        return _join_packed(_in_partition_order(got, self.block_parts), self.part_rows)
+
+
+def _in_partition_order(per_block: list, block_parts: Sequence[Sequence[int]]) -> list:
+    """Per-partition pieces from per-block lists, in partition order."""
+    out: dict[int, Any] = {}
+    for pieces, parts in zip(per_block, block_parts):
+        out.update(zip(parts, pieces))
+    return [out[i] for i in range(len(out))]
+
+
+def _blocks(client, packed: list, rows: np.ndarray):
+    """Group the partitions' bitsets into one block per worker thread (fewer, larger tasks).
+
+    Partitions are grouped by the worker holding them, in partition order, and split
+    into as many blocks as it has threads; where a partition lives only changes the
+    grouping, never a count. Returns the block futures, the partitions of each block
+    and the worker of each block.
+    """
+    from distributed import wait
+
+    wait(packed)
+    where = client.who_has(packed)
+    threads = client.nthreads()
+    by_worker: dict[Any, list[int]] = {}
+    for i, future in enumerate(packed):
+        holders = sorted(where.get(future.key, ()))
+        by_worker.setdefault(holders[0] if holders else None, []).append(i)
+    groups = []
+    for worker, parts in by_worker.items():
+        k = max(1, min(len(parts), int(threads.get(worker, 1))))
+        groups += [(worker, chunk.tolist()) for chunk in np.array_split(np.array(parts), k)]
+    blocks = [client.submit(_block, rows, *[packed[i] for i in group], pure=False,
+                            workers=None if worker is None else [worker], allow_other_workers=True)
+              for worker, group in groups]
+    return blocks, tuple(tuple(group) for _, group in groups), tuple(worker for worker, _ in groups)
+
+
+def _on_blocks(client, blocks: list, workers: Sequence, func, *args, meanwhile=None) -> list:
+    """Run ``func(block, *args)`` on every block, each on the worker that holds it (where it
+    still can: the restriction is loose), and gather the results in block order; the
+    driver runs `meanwhile` (if given) while the tasks run."""
+    futures = [client.submit(func, block, *args, pure=False, allow_other_workers=True,
+                             workers=None if worker is None else [worker])
+               for block, worker in zip(blocks, workers)]
+    if meanwhile is not None:
+        meanwhile()
+    return client.gather(futures)
+
+
+def _spread(client, delayed: list) -> list:
+    """Futures of the partitions, placed evenly over the workers' threads up front.
+
+    Partition ``i`` goes to thread slot ``i mod slots`` (loosely: a busy or lost worker's
+    partitions still run elsewhere); each partition's later tasks follow it. Left to
+    the scheduler, 10 equal partitions came out 6 and 4 on 2 workers, and every pass
+    waited for the worker with 6.
+    """
+    threads = client.nthreads()
+    slots = [addr for addr in sorted(threads) for _ in range(max(1, int(threads[addr])))]
+    if not slots:
+        return client.compute(delayed)
+    futures: list = [None] * len(delayed)
+    for addr in sorted(threads):
+        mine = [i for i in range(len(delayed)) if slots[i % len(slots)] == addr]
+        if mine:
+            got = client.compute([delayed[i] for i in mine], workers=[addr], allow_other_workers=True)
+            for i, future in zip(mine, got):
+                futures[i] = future
+    return futures
 
 
 def _default_client():
@@ -215,6 +579,28 @@ def _check_schema(profiles: list, columns: Sequence[str]) -> None:
                 raise SlicefindValueError(msg)
 
 
+def _merge_categories(infos: list):
+    """A categorical column's observed values in category order, with summed counts.
+
+    Categories that later partitions add come after the first partition's, in the order
+    they appear (the order `pandas.api.types.union_categoricals` gives).
+    """
+    index = pd.Index(infos[0]["categories"])
+    for info in infos[1:]:
+        if not index.equals(info["categories"]):
+            other = pd.Index(info["categories"])
+            index = index.append(other[~other.isin(index)])
+    counts = np.zeros(len(index), np.int64)
+    error_counts = np.zeros(len(index), np.int64)
+    for info in infos:
+        where = np.arange(len(index)) if index.equals(info["categories"]) else \
+            index.get_indexer(info["categories"])
+        np.add.at(counts, where, info["counts"])
+        np.add.at(error_counts, where, info["error_counts"])
+    seen = counts > 0
+    return index[seen], counts[seen], error_counts[seen]
+
+
 def _merge_uniques(infos: list):
     """Global sorted distinct values (factorize order) and their summed counts."""
     pieces = [info["uniques"] for info in infos if len(info["uniques"])]
@@ -237,16 +623,72 @@ def _merge_uniques(infos: list):
     return uniques, counts, error_counts
 
 
+def _positive_class(error_kind: str, positive, classes: np.ndarray):
+    """The positive class for error_kind=, inferred for binary labels, checked, as in memory."""
+    present = set(classes.tolist())
+    if positive is None:
+        if len(classes) > 2:
+            msg = (f"error_kind={error_kind!r} is for binary tasks, but label has {len(classes)} "
+                   "classes; pass positive= to name the positive class.")
+            raise SlicefindValueError(msg)
+        positive = 1 if 1 in present else (True if True in present else None)
+        if positive is None:
+            msg = (f"error_kind={error_kind!r} needs positive=, the positive class; labels are "
+                   f"{sorted(map(str, classes))!r}.")
+            raise SlicefindValueError(msg)
+    if positive not in present:
+        msg = f"positive={positive!r} is not a label value; labels are {sorted(map(str, classes))[:10]!r}."
+        raise SlicefindValueError(msg)
+    return positive
+
+
+#: from this many rows on, the driver loads its compiled kernels while the workers count
+_WARM_DRIVER_ROWS = 100_000
+
+
+def _warm_driver() -> None:
+    """Load the compiled Fisher-tail kernel that scoring thousands of rules will call.
+
+    In memory, numba is already loaded by the counting kernel; here the counting runs on
+    the workers, and loading numba on the driver afterwards (~0.8 s from the disk cache)
+    came after all the workers' time. Called while the workers load their own kernel for
+    the first count, it overlaps with it.
+    """
+    from slicefind.bitset import _numba_kernels
+
+    x = np.ones(1)
+    _numba_kernels().hypergeom_tails(x, x, x, x, x, x, x, np.empty(1))
+
+
+class _Clock:
+    """Seconds per phase, for the DEBUG log and `DaskMined.seconds`."""
+
+    def __init__(self):
+        self.last = time.perf_counter()
+        self.seconds: dict[str, float] = {}
+
+    def mark(self, phase: str) -> None:
+        now = time.perf_counter()
+        self.seconds[phase] = self.seconds.get(phase, 0.0) + now - self.last
+        self.last = now
+
+
 def mine_dask(data, *, label=None, prediction=None, errors=None, loss=None, threshold=None,
               exclude: Sequence[str] = (), id_column: str | None = None, client=None,
+              error_kind: str = "all", positive=None, true_class=None,
               min_rows_for, min_errors_for, n_bins: int = 4, tree_depth: int = 2,
               max_terms: int = 3, random_state=0, sample_rows: int = SAMPLE_ROWS) -> DaskMined:
     """Run the item and rule passes on a dask DataFrame; see the module docstring.
 
-    `min_rows_for(n)` and `min_errors_for(n, n_errors, min_rows)` give the thresholds
-    once the table's size is known (the same defaults as in memory).
+    The options mean what they mean for `find_slices` (label, prediction, errors and
+    loss are column names). `min_rows_for(n)` and `min_errors_for(n, n_errors, min_rows)`
+    give the thresholds once the number of analysed rows is known (the same defaults as
+    in memory); `sample_rows` bounds the sample numeric cut points are fitted on.
     """
+    clock = _Clock()
     columns = list(data.columns)
+    if error_kind not in ERROR_KINDS:
+        raise SlicefindValueError(f"error_kind must be one of {ERROR_KINDS}; got {error_kind!r}.")
     ways = [w for w, v in (("label/prediction", label), ("errors", errors), ("loss", loss)) if v is not None]
     if len(ways) != 1:
         raise SlicefindValueError("say which rows are errors in exactly one way: label= and prediction=, "
@@ -269,33 +711,71 @@ def mine_dask(data, *, label=None, prediction=None, errors=None, loss=None, thre
             raise SlicefindValueError("prediction= is required when label= is given.")
         how = {"kind": "label", "label": label, "prediction": prediction}
         used = {"label": label, "prediction": prediction}
+        definition = "label != prediction"
     elif errors is not None:
         how, used = {"kind": "errors", "errors": errors}, {"errors": errors}
+        definition = f"{errors} is true"
     else:
         if threshold is None:
             raise SlicefindValueError("loss= needs threshold=: a row is an error when its loss is above it.")
+        if isinstance(threshold, bool) or not isinstance(threshold, (int, float, np.number)) \
+                or not np.isfinite(threshold):
+            raise SlicefindValueError(f"threshold must be a finite number; got {threshold!r}.")
         how, used = {"kind": "loss", "loss": loss, "threshold": float(threshold)}, {"loss": loss}
+        definition = f"{loss} > {threshold:g}"
+    filtering = error_kind != "all" or true_class is not None
+    if filtering and label is None:
+        msg = "error_kind= and true_class= need label= and prediction= (not errors= or loss=)."
+        raise SlicefindValueError(msg)
     client = client or _default_client()
     seed = int(np.random.default_rng(random_state).integers(2**31))
     not_mined = set(exclude) | set(used.values()) | ({id_column} if id_column else set())
     candidates = [c for c in columns if c not in not_mined]
 
-    parts = client.compute(data.to_delayed())
-    profiles = client.gather(client.map(_profile, parts, range(len(parts)), [how] * len(parts),
-                                        [candidates] * len(parts), [seed] * len(parts),
-                                        [sample_rows] * len(parts), pure=False))
+    parts = _spread(client, data.to_delayed())
+    n_parts = len(parts)
+    kept = None
+    if filtering:
+        how = dict(how, error_kind=error_kind, positive=None, true_class=true_class)
+        pre = client.gather(client.map(_label_classes, parts, range(n_parts), [how] * n_parts,
+                                       [candidates] * n_parts, pure=False))
+        _check_schema(pre, columns)
+        if sum(p["n"] for p in pre) == 0:
+            raise SlicefindValueError("data is empty (0 rows); slicefind needs a dev set with rows.")
+        classes = pd.unique(pd.Series(np.concatenate([np.asarray(p["classes"], dtype=object)
+                                                      for p in pre]), dtype=object))
+        if error_kind != "all":
+            how = dict(how, positive=_positive_class(error_kind, positive, classes))
+            definition = f"{error_kind.replace('_', ' ')} (positive = {how['positive']!r})"
+        if true_class is not None:
+            if sum(p["n_true_class"] for p in pre) == 0:
+                raise SlicefindValueError(f"true_class={true_class!r} never occurs in label.")
+            definition += f", label = {true_class!r}"
+        kept = client.map(_kept, parts, [how] * n_parts, pure=False)
+        parts = client.map(_analysed, parts, [how] * n_parts, pure=False)
+        clock.mark("rows pass")
+
+    profiled = client.map(_profile, parts, range(n_parts), [how] * n_parts,
+                          [candidates] * n_parts, pure=False)
+    profiles = client.gather(client.map(_summary, profiled, pure=False))
     _check_schema(profiles, columns)     # before anything reads a partition's columns
-    n = int(sum(p["n"] for p in profiles))
+    clock.mark("profile pass")
+    part_rows = tuple(int(p["n"]) for p in profiles)
+    n = int(sum(part_rows))
     k_total = int(sum(p["n_errors"] for p in profiles))
-    if n == 0:
+    if n == 0 and not filtering:
         raise SlicefindValueError("data is empty (0 rows); slicefind needs a dev set with rows.")
-    if k_total == 0 or k_total == n:
-        what = "no row is an error" if k_total == 0 else f"every one of the {n:,} rows analysed is an error"
-        raise SlicefindValueError(f"{what}; check label=/prediction= or the error definition.")
+    if k_total == 0:
+        msg = (f"no row is an error ({definition}) among the {n:,} rows analysed; "
+               "there is nothing to explain. Check label=/prediction= or the error definition.")
+        raise SlicefindValueError(msg)
+    if k_total == n:
+        msg = (f"every one of the {n:,} rows analysed is an error ({definition}); "
+               "slices need correct rows to compare against. Check label=/prediction=.")
+        raise SlicefindValueError(msg)
     min_rows = min_rows_for(n)
     min_errors = min_errors_for(n, k_total, min_rows)
-    sample = pd.concat([p["sample"] for p in profiles], ignore_index=True)
-    sample = sample.sort_values("__key__", kind="stable").head(sample_rows).reset_index(drop=True)
+    builder = _Builder(np.zeros(0, dtype=bool), min_rows, min_errors)
 
     # column kinds and candidate items, as build_eval_table and build_items decide them
     kinds, skipped, merged = {}, {}, {}
@@ -310,8 +790,10 @@ def mine_dask(data, *, label=None, prediction=None, errors=None, loss=None, thre
         if any(i.get("many") for i in infos):
             kind, reason = NUMERIC, ""
         else:
-            uniques, counts, error_counts = _merge_uniques(infos)
-            merged[column] = (uniques, counts, error_counts)
+            uniques, counts, error_counts = (_merge_categories(infos) if "categories" in infos[0]
+                                             else _merge_uniques(infos))
+            merged[column] = (uniques, counts, error_counts,
+                              sum(i["missing"] for i in infos), sum(i["missing_errors"] for i in infos))
             integral = True
             if pd.api.types.is_float_dtype(dtype) and len(uniques) <= MAX_INT_LEVELS:
                 values = np.asarray(uniques, dtype=float)
@@ -322,104 +804,140 @@ def mine_dask(data, *, label=None, prediction=None, errors=None, loss=None, thre
         else:
             kinds[column] = kind
     mined = tuple(kinds)
-    sample_errors = sample["__error__"].to_numpy(dtype=bool)
-    scale = len(sample) / n
 
     spec, cand_items, cand_cols = [], [], []
     selection_of = {}        # id(item) -> the one-item spec that selects its rows
-    first_pass = [c for c in mined if kinds[c] != NUMERIC]
-    for column in first_pass:                 # categories and dates first, as in memory
+    for column in (c for c in mined if kinds[c] != NUMERIC):      # categories and dates first, as in memory
         if kinds[column] == CATEGORICAL:
-            uniques, counts, _ = merged[column]
-            listed = categorical_items(column, uniques, counts, min_rows)
+            uniques, counts, error_counts, n_missing, e_missing = merged[column]
+            listed = []
+            for item, sel in categorical_items(column, uniques, counts, min_rows):
+                # the counts are known already: offer only what the builder can keep
+                rows, errs = ((n_missing, e_missing) if sel == (-1,) else
+                              (int(counts[list(sel)].sum()), int(error_counts[list(sel)].sum())))
+                if builder.wanted(rows, errs, n):
+                    listed.append((item, sel))
             spec.append((column, CATEGORICAL, (uniques, [sel for _, sel in listed])))
             cand_items += [item for item, _ in listed]
             selection_of.update({id(item): (column, CATEGORICAL, (uniques, [sel]))
                                  for item, sel in listed})
         else:
-            listed = [item for item, _ in datetime_masks(column, pd.Series(pd.to_datetime([]), dtype="datetime64[ns]"))]
+            listed = [item for item, _ in datetime_masks(column, pd.Series([], dtype="datetime64[ns]"))]
             spec.append((column, DATETIME, None))
             cand_items += listed
         cand_cols += [mined.index(column)] * (len(cand_items) - len(cand_cols))
-    packed = client.map(_item_bits, parts, [how] * len(parts), [spec] * len(parts), pure=False)
-    summaries = client.gather(client.map(_item_summary, packed, pure=False))
-    builder = _Builder(np.zeros(0, dtype=bool), min_rows, min_errors)
-    _add_counted(builder, cand_items, cand_cols, summaries, n, offset=0)
+    packed = client.map(_item_bits, parts, profiled, [spec] * n_parts, pure=False)
+    _add_counted(client, builder, cand_items, cand_cols, packed, n, offset=0)
+    clock.mark("item pass")
 
-    # numeric cut points from the sample, also inside the worst categorical items' rows
-    within = []
-    if tree_depth > 0 and builder.items:
-        rows = np.asarray(builder.n_rows)
-        errs = np.asarray(builder.n_errors)
-        excess = errs - rows * k_total / n
-        p = np.atleast_1d(fisher_greater(errs, rows, k_total, n))
-        ranked = [i for i in np.argsort(-excess, kind="stable") if p[i] < 1e-3 and excess[i] > 0]
-        for i in ranked[:CONDITIONAL_ITEMS]:
-            one = selection_of.get(id(builder.items[i]))
+    numeric = [c for c in mined if kinds[c] == NUMERIC]
+    if numeric:
+        # numeric cut points from a sample, also inside the worst categorical items' rows
+        worst = []
+        if tree_depth > 0 and builder.items:
+            rows = np.asarray(builder.n_rows)
+            errs = np.asarray(builder.n_errors)
+            excess = errs - rows * k_total / n
+            p = np.atleast_1d(fisher_greater(errs, rows, k_total, n))
+            ranked = [i for i in np.argsort(-excess, kind="stable") if p[i] < 1e-3 and excess[i] > 0]
+            worst = [builder.items[i] for i in ranked[:CONDITIONAL_ITEMS]]
+        read = numeric + [c for c in dict.fromkeys(item.column for item in worst) if c not in numeric]
+        samples = client.gather(client.map(_sample, parts, profiled, range(n_parts), [read] * n_parts,
+                                           [seed] * n_parts, [sample_rows] * n_parts, pure=False))
+        sample = pd.concat(samples, ignore_index=True)
+        sample = sample.sort_values("__key__", kind="stable").head(sample_rows).reset_index(drop=True)
+        sample_errors = sample["__error__"].to_numpy(dtype=bool)
+        within = []
+        for item in worst:
+            one = selection_of.get(id(item))
             if one is not None:              # (the in-memory engine ranks dates too; see below)
-                within.append(_candidates_masks(sample, [one])[0])
+                within.append(_value_masks(sample, [one])[0])
             else:
-                within.append(_candidates_masks(sample, [(builder.items[i].column, DATETIME, None)])[
-                    _datetime_position(builder.items[i])])
-    numeric_spec = []
-    numeric_items, numeric_cols = [], []
-    sample_min_rows = max(1, int(round(min_rows * scale)))
-    for column in (c for c in mined if kinds[c] == NUMERIC):
-        x = numeric_values(sample[column])
-        cuts = numeric_cuts(x, sample_errors, min_rows=sample_min_rows, n_bins=n_bins,
-                            depth=tree_depth, within=within)
-        numeric_spec.append((column, NUMERIC, cuts))
-        listed = [item for item, _ in numeric_masks(column, np.zeros(0), cuts)]
-        numeric_items += listed
-        numeric_cols += [mined.index(column)] * len(listed)
-    if numeric_spec:
-        packed_num = client.map(_item_bits, parts, [how] * len(parts), [numeric_spec] * len(parts),
-                                pure=False)
-        sums_num = client.gather(client.map(_item_summary, packed_num, pure=False))
-        _add_counted(builder, numeric_items, numeric_cols, sums_num, n, offset=len(cand_items))
-        packed = client.map(_stack_packed, packed, packed_num, pure=False)
+                within.append(_value_masks(sample, [(item.column, DATETIME, None)])[
+                    _datetime_position(item)])
+        clock.mark("sample pass")
+        numeric_spec = []
+        numeric_items, numeric_cols = [], []
+        sample_min_rows = max(1, int(round(min_rows * len(sample) / n)))
+        for column in numeric:
+            x = numeric_values(sample[column])
+            cuts = numeric_cuts(x, sample_errors, min_rows=sample_min_rows, n_bins=n_bins,
+                                depth=tree_depth, within=within)
+            numeric_spec.append((column, NUMERIC, cuts))
+            listed = [item for item, _ in numeric_masks(column, np.zeros(0), cuts)]
+            numeric_items += listed
+            numeric_cols += [mined.index(column)] * len(listed)
+        packed_num = client.map(_item_bits, parts, profiled, [numeric_spec] * n_parts, pure=False)
+        _add_counted(client, builder, numeric_items, numeric_cols, packed_num, n,
+                     offset=len(cand_items))
+        clock.mark("numeric item pass")
+    del profiled                          # the codes are no longer needed on the workers
     order = np.argsort(np.asarray(builder.cols, dtype=np.int64), kind="stable")
     builder.reorder(order)
-    keep = np.array([payload for _, payload in builder.bits], dtype=np.int64)
-    part_bits = client.map(_select_bits, packed, [keep] * len(parts), pure=False)
+    keep = np.array([payload for _, payload in builder.bits], dtype=np.int64)   # candidate of each item
+    if numeric:                           # two arrays per partition: keep the items' rows in one
+        packed = client.map(_stack_kept, packed, packed_num, [keep] * n_parts, pure=False)
+        del packed_num
+        keep = np.arange(keep.size, dtype=np.int64)
+    blocks, block_parts, block_workers = _blocks(client, packed, keep)
+    del packed
 
     items = ItemSet(items=tuple(builder.items), column_of=np.asarray(builder.cols, dtype=np.int64),
                     columns=mined, bits=None, error_bits=None,
                     n_rows=np.asarray(builder.n_rows, dtype=np.int64),
                     n_errors=np.asarray(builder.n_errors, dtype=np.int64))
 
+    words = {"rows": sum(bitset.n_words(r) for r in part_rows),
+             "errors": sum(bitset.n_words(int(p["n_errors"])) for p in profiles)}
+
+    warm = [n >= _WARM_DRIVER_ROWS]       # the driver's kernels still to load (once)
+
     def counter(which):
         def count(prefixes, offsets, extensions):
-            futures = [client.submit(_count, bits, which, prefixes, offsets, extensions, pure=False)
-                       for bits in part_bits]
-            return np.sum(client.gather(futures), axis=0).astype(np.int64)
+            # the kernel the in-memory engine would pick for the whole table
+            engine = "numba" if len(extensions) * words[which] >= bitset.NUMBA_MIN_WORDS else "numpy"
+            meanwhile = None
+            if engine == "numba" and warm[0]:        # the workers load theirs meanwhile
+                meanwhile, warm[0] = _warm_driver, False
+            got = _on_blocks(client, blocks, block_workers, _count, which, prefixes, offsets,
+                             extensions, engine, meanwhile=meanwhile)
+            return np.sum(got, axis=0).astype(np.int64)
         return count
 
     counts = search_levels(items.n_rows, items.n_errors, items.column_of, max_terms=max_terms,
                            min_rows=min_rows, min_errors=min_errors, count_errors=counter("errors"),
                            count_rows=counter("rows"))
-    error_flags = np.concatenate(client.gather(client.map(lambda b: b["errors"], part_bits, pure=False)))
+    clock.mark("search")
+
+    error_pieces = _in_partition_order(_on_blocks(client, blocks, block_workers, _block_errors),
+                                       block_parts)
+    error_flags = bitset.unpack(_join_packed(error_pieces, part_rows), n)[0]
+    if kept is None:
+        positions = np.arange(n, dtype=np.intp)
+        n_input = n
+    else:
+        masks = client.gather(kept)
+        starts = np.concatenate([[0], np.cumsum([m["n"] for m in masks])])
+        positions = np.concatenate([np.flatnonzero(bitset.unpack(m["keep"], m["n"])[0]) + start
+                                    for m, start in zip(masks, starts) if m["n"]]).astype(np.intp)
+        n_input = int(starts[-1])
     gathered = {}
     for role, column in (("label", label), ("prediction", prediction), ("id", id_column)):
         if column is not None:
             gathered[role] = np.concatenate(client.gather(client.map(
-                _gather_column, parts, [column] * len(parts), pure=False)))
+                _gather_column, parts, [column] * n_parts, pure=False)))
     frame = pd.DataFrame({id_column: gathered["id"]}) if id_column else pd.DataFrame(index=range(n))
-    definition = {"label": "label != prediction", "errors": f"{errors} is true",
-                  "loss": f"{loss} > {threshold!r}"}[how["kind"]]
-    table = EvalTable(data=frame, errors=error_flags, positions=np.arange(n, dtype=np.intp),
-                      n_input_rows=n, kinds=kinds, skipped=skipped, label=gathered.get("label"),
+    table = EvalTable(data=frame, errors=error_flags, positions=positions,
+                      n_input_rows=n_input, kinds=kinds, skipped=skipped, label=gathered.get("label"),
                       prediction=gathered.get("prediction"), embeddings=None, id_column=id_column,
                       error_definition=definition, columns_used=used)
-    return DaskMined(table=table, items=items, counts=counts, client=client, part_bits=part_bits,
-                     n_partitions=len(parts))
-
-
-def _stack_packed(first: dict, second: dict) -> dict:
-    """Candidates of both passes of one partition, in candidate order."""
-    return {"bits": np.concatenate([first["bits"], second["bits"]]),
-            "error_bits": np.concatenate([first["error_bits"], second["error_bits"]]),
-            "n": first["n"], "errors": first["errors"]}
+    clock.mark("gathering")
+    _log.debug("dask engine, %d partitions, %s rows: %s", n_parts, f"{n:,}",
+               ", ".join(f"{k} {v:.2f} s" for k, v in clock.seconds.items()),
+               extra={"seconds": dict(clock.seconds)})
+    return DaskMined(table=table, items=items, counts=counts, client=client, blocks=blocks,
+                     block_parts=block_parts, block_workers=block_workers, n_partitions=n_parts,
+                     part_rows=part_rows, seconds=dict(clock.seconds))
 
 
 def _datetime_position(item: Item) -> int:
@@ -431,10 +949,26 @@ def _datetime_position(item: Item) -> int:
     return 31
 
 
-def _add_counted(builder: _Builder, items: list, cols: list, summaries: list, n: int, offset: int):
-    """Offer every candidate to the builder with counts and hashes summed over partitions."""
+def _add_counted(client, builder: _Builder, items: list, cols: list, packed: list, n: int,
+                 offset: int) -> None:
+    """Offer every candidate to the builder with counts summed over partitions.
+
+    The builder compares the rows of two candidates only when they share their column,
+    rows and errors; only those candidates' bitsets are hashed, on the workers.
+    """
+    summaries = client.gather(client.map(_item_summary, packed, pure=False))
     n_rows = np.sum([s["n_rows"] for s in summaries], axis=0) if summaries else np.zeros(len(items))
     n_errors = np.sum([s["n_errors"] for s in summaries], axis=0) if summaries else np.zeros(len(items))
+    by_key: dict[tuple, list[int]] = {}
+    for i, col in enumerate(cols):
+        if builder.wanted(int(n_rows[i]), int(n_errors[i]), n):
+            by_key.setdefault((col, int(n_rows[i]), int(n_errors[i])), []).append(i)
+    compare = sorted(i for group in by_key.values() if len(group) > 1 for i in group)
+    signature: dict[int, tuple] = {}
+    if compare:
+        hashes = client.gather(client.map(_item_hashes, packed, [compare] * len(packed), pure=False))
+        signature = {c: tuple(h[j] for h in hashes) for j, c in enumerate(compare)}
+        _log.debug("hashed %d of %d candidates to compare their rows", len(compare), len(items))
     for i, (item, col) in enumerate(zip(items, cols)):
-        signature = tuple(s["hash"][i] for s in summaries)
-        builder.add_counted(item, col, int(n_rows[i]), int(n_errors[i]), n, signature, offset + i)
+        builder.add_counted(item, col, int(n_rows[i]), int(n_errors[i]), n, signature.get(i),
+                            offset + i)

@@ -7,7 +7,6 @@ every source; the table then shows the passing slices ranked by excess errors.
 from __future__ import annotations
 
 import math
-import warnings
 from dataclasses import dataclass, field
 from typing import Any, Mapping, Sequence
 
@@ -306,9 +305,7 @@ def find_slices(
     from slicefind.distributed import is_dask_frame
 
     if is_dask_frame(data):
-        unsupported = [name for name, given in (
-            ("embeddings", embeddings is not None), ("error_kind", error_kind != "all"),
-            ("true_class", true_class is not None), ("positive", positive is not None)) if given]
+        unsupported = [name for name, given in (("embeddings", embeddings is not None),) if given]
         if unsupported or engine != "bitset":
             names = unsupported + (["engine"] if engine != "bitset" else [])
             msg = (f"with a Dask DataFrame, {', '.join(names)} cannot be used yet; compute() a "
@@ -317,8 +314,10 @@ def find_slices(
         from slicefind.distributed import mine_dask
 
         mined = mine_dask(data, label=label, prediction=prediction, errors=errors, loss=loss,
-                          threshold=threshold, exclude=tuple(exclude), id_column=id_column,
-                          client=client, min_rows_for=rows_for, min_errors_for=errors_for,
+                          threshold=threshold, id_column=id_column, client=client,
+                          exclude=(exclude,) if isinstance(exclude, str) else tuple(exclude),
+                          error_kind=error_kind, positive=positive,
+                          true_class=true_class, min_rows_for=rows_for, min_errors_for=errors_for,
                           n_bins=n_bins, max_terms=max_terms, random_state=random_state)
         table, items, counts = mined.table, mined.items, mined.counts
         n, k_total = table.n_rows, table.n_errors

@@ -28,6 +28,33 @@ def _table(n=12_000, seed=0):
     return frame
 
 
+def _binary_table(n=12_000, seed=0):
+    """The depot table with a binary label whose misses (false negatives) pile up on
+    scanner S3 at high speed, while false positives are spread evenly."""
+    frame = _table(n, seed).drop(columns=["label", "pred"])
+    rng = np.random.default_rng(seed + 1)
+    frame["label"] = (rng.random(n) < 0.5).astype(int)
+    bad = ((frame["scanner"] == "S3") & (frame["belt_speed"] >= 2.2)).to_numpy()
+    miss = rng.random(n) < np.where(bad & (frame["label"] == 1), 0.5, 0.07)
+    frame["pred"] = np.where(miss, 1 - frame["label"], frame["label"])
+    return frame
+
+
+def _assert_same(a, b):
+    """Two results of find_slices are the same: tables, tested rules, rows, analysed rows."""
+    pd.testing.assert_frame_equal(a.table, b.table)
+    pd.testing.assert_frame_equal(a.tested, b.tested)
+    for sid in a.table["slice_id"]:
+        assert a.rows(sid).tolist() == b.rows(sid).tolist()
+    ta, tb = a.eval_table, b.eval_table
+    assert ta.positions.dtype == tb.positions.dtype
+    assert ta.positions.tolist() == tb.positions.tolist()
+    assert (ta.n_input_rows, ta.error_definition, ta.skipped) == \
+        (tb.n_input_rows, tb.error_definition, tb.skipped)
+    assert ta.errors.tolist() == tb.errors.tolist()
+    assert ta.label.tolist() == tb.label.tolist()
+
+
 def _uneven(frame, sizes):
     """The frame as a dask DataFrame of partitions of the given sizes."""
     bounds = np.cumsum([0] + list(sizes))
@@ -62,31 +89,35 @@ def test_identical_to_in_memory_on_seven_uneven_partitions(client):
     assert frame["parcel_id"].tolist() == b.eval_table.data["parcel_id"].tolist()
 
 
-def test_worker_killed_mid_computation_changes_nothing(client):
-    """A worker process killed while the search runs is replaced and the result is the same."""
-    import threading
-    import time
+@pytest.mark.parametrize("options", [{}, {"error_kind": "false_negative"}], ids=["all", "false_negative"])
+def test_worker_killed_mid_computation_changes_nothing(client, monkeypatch, options):
+    """A worker process killed once the items are packed (its bitsets, partitions and kept
+    rows lost) is replaced, its tasks rerun from their partitions, and the result is the same."""
+    import os
 
-    frame = _table(seed=3)
+    import slicefind.distributed as engine
+
+    frame = _binary_table(seed=3)
     ddf = _uneven(frame, [4000, 4000, 4000])
-    expected = sf.find_slices(frame, label="label", prediction="pred")
+    expected = sf.find_slices(frame, label="label", prediction="pred", **options)
     workers = list(client.scheduler_info()["workers"])
+    held = []
+    search = engine.search_levels
 
-    def kill_one():
-        time.sleep(0.8)
+    def search_after_a_kill(*args, **kwargs):
+        held.append(len(client.has_what()[workers[0]]))
         try:
-            client.run(lambda: __import__("os")._exit(1), workers=[workers[0]])
+            client.run(lambda: os._exit(1), workers=[workers[0]])
         except Exception:        # the worker dies before it can answer
             pass
+        return search(*args, **kwargs)
 
-    killer = threading.Thread(target=kill_one)
-    killer.start()
-    got = sf.find_slices(ddf, label="label", prediction="pred", client=client)
-    killer.join()
+    monkeypatch.setattr(engine, "search_levels", search_after_a_kill)
+    got = sf.find_slices(ddf, label="label", prediction="pred", client=client, **options)
     client.wait_for_workers(2, timeout=60)
-    assert workers[0] not in client.scheduler_info()["workers"]     # it really died
-    pd.testing.assert_frame_equal(expected.table, got.table)
-    pd.testing.assert_frame_equal(expected.tested, got.tested)
+    assert held and held[0] > 0                                       # it held results ...
+    assert workers[0] not in client.scheduler_info()["workers"]      # ... and really died
+    _assert_same(expected, got)
 
 
 def _from_parts(parts):
@@ -114,12 +145,161 @@ def test_partition_with_other_type_is_named(client):
         sf.find_slices(ddf, label="label", prediction="pred", client=client)
 
 
+def test_false_negatives_identical_to_in_memory(client):
+    """error_kind="false_negative" keeps the positives in every partition, as in memory."""
+    frame = _binary_table()
+    ddf = _uneven(frame, [600, 3000, 150, 2250, 2400, 1500, 2100])
+    a = sf.find_slices(frame, label="label", prediction="pred", error_kind="false_negative",
+                       id_column="parcel_id")
+    b = sf.find_slices(ddf, label="label", prediction="pred", error_kind="false_negative",
+                       id_column="parcel_id", client=client)
+    _assert_same(a, b)
+    positives = np.flatnonzero(frame["label"].to_numpy() == 1)
+    assert positives.tolist() == b.eval_table.positions.tolist()       # positive=1 inferred
+    assert "false negative (positive = 1)" == b.eval_table.error_definition
+    assert "scanner = S3 and belt_speed >= 2.2" == b.table.loc[0, "description"]
+    assert frame["parcel_id"].to_numpy()[positives].tolist() == b.eval_table.data["parcel_id"].tolist()
+    rows = b.rows(b.table.loc[0, "slice_id"])
+    assert (frame["label"].to_numpy()[rows] == 1).all()
+
+
+def test_false_positives_with_named_positive_identical(client):
+    """positive= names the class; error_kind="false_positive" keeps its negatives."""
+    frame = _binary_table(seed=2).assign(label=lambda f: f["label"].map({0: "ok", 1: "damaged"}),
+                                         pred=lambda f: f["pred"].map({0: "ok", 1: "damaged"}))
+    ddf = _uneven(frame, [5000, 37, 4963, 2000])
+    a = sf.find_slices(frame, label="label", prediction="pred", error_kind="false_positive",
+                       positive="damaged", min_rows=100)
+    b = sf.find_slices(ddf, label="label", prediction="pred", error_kind="false_positive",
+                       positive="damaged", min_rows=100, client=client)
+    _assert_same(a, b)
+    assert np.flatnonzero(frame["label"].to_numpy() == "ok").tolist() == b.eval_table.positions.tolist()
+    assert "false positive (positive = 'damaged')" == b.eval_table.error_definition
+
+
+def test_true_class_identical_to_in_memory(client):
+    """true_class= keeps that class's rows of every partition, positions into the whole frame."""
+    frame = _table(n=20_000, seed=4)
+    ddf = _uneven(frame, [1000, 7000, 64, 5936, 6000])
+    a = sf.find_slices(frame, label="label", prediction="pred", true_class=3, id_column="parcel_id")
+    b = sf.find_slices(ddf, label="label", prediction="pred", true_class=3, id_column="parcel_id",
+                       client=client)
+    _assert_same(a, b)
+    assert np.flatnonzero(frame["label"].to_numpy() == 3).tolist() == b.eval_table.positions.tolist()
+    assert 20_000 == b.eval_table.n_input_rows
+    assert "label != prediction, label = 3" == b.eval_table.error_definition
+    assert "scanner = S3 and belt_speed >= 2.2" == b.table.loc[0, "description"]
+
+
+def test_bad_positive_and_true_class_are_named(client):
+    """The same errors as in memory for a positive= or true_class= the labels do not hold."""
+    frame = _binary_table(n=3000)
+    ddf = dd.from_pandas(frame, npartitions=3)
+    with pytest.raises(sf.SlicefindValueError,
+                       match=r"positive='yes' is not a label value; labels are \['0', '1'\]"):
+        sf.find_slices(ddf, label="label", prediction="pred", error_kind="false_negative",
+                       positive="yes", client=client)
+    with pytest.raises(sf.SlicefindValueError, match=r"true_class=7 never occurs in label"):
+        sf.find_slices(ddf, label="label", prediction="pred", true_class=7, client=client)
+    multi = dd.from_pandas(_table(n=3000), npartitions=3)
+    with pytest.raises(sf.SlicefindValueError,
+                       match=r"is for binary tasks, but label has 10 classes; pass positive="):
+        sf.find_slices(multi, label="label", prediction="pred", error_kind="false_negative", client=client)
+    with pytest.raises(sf.SlicefindValueError,
+                       match=r"error_kind= and true_class= need label= and prediction="):
+        sf.find_slices(ddf.assign(wrong=ddf["label"] != ddf["pred"]), errors="wrong",
+                       error_kind="false_negative", client=client)
+    with pytest.raises(sf.SlicefindValueError, match=r"error_kind must be one of .*; got 'misses'"):
+        sf.find_slices(ddf, label="label", prediction="pred", error_kind="misses", client=client)
+
+
+def test_missing_label_in_a_left_out_row_is_still_an_error(client):
+    """Labels are checked on every row before error_kind= leaves rows out, as in memory."""
+    frame = _binary_table(n=3000).assign(label=lambda f: f["label"].astype(float))
+    frame.loc[2500, "label"] = np.nan
+    with pytest.raises(sf.SlicefindValueError, match="label"):
+        sf.find_slices(frame, label="label", prediction="pred", error_kind="false_negative", positive=1.0)
+    with pytest.raises(sf.SlicefindValueError, match=r"column 'label' has missing values in a partition"):
+        sf.find_slices(dd.from_pandas(frame, npartitions=3), label="label", prediction="pred",
+                       error_kind="false_negative", positive=1.0, client=client)
+
+
+def test_categories_that_differ_between_partitions(client):
+    """Partitions whose categoricals list other categories are mined as their concatenation."""
+    rng = np.random.default_rng(7)
+    parts = []
+    for cats in (["day", "night"], ["late", "night", "day"], ["night", "early"]):
+        part = _table(n=4000, seed=len(parts)).drop(columns=["shift"])
+        part.insert(1, "shift", pd.Categorical(rng.choice(cats, 4000), categories=cats))
+        bad = (part["shift"] == "late").to_numpy()
+        part["pred"] = np.where(bad & (rng.random(4000) < 0.4), (part["label"] + 1) % 10, part["pred"])
+        parts.append(part)
+    ddf = _from_parts(parts)
+    whole = ddf.compute()
+    assert ["day", "night", "late", "early"] == whole["shift"].cat.categories.tolist()
+    a = sf.find_slices(whole, label="label", prediction="pred", exclude=["parcel_id"])
+    b = sf.find_slices(ddf, label="label", prediction="pred", exclude=["parcel_id"], client=client)
+    pd.testing.assert_frame_equal(a.table, b.table)
+    pd.testing.assert_frame_equal(a.tested, b.tested)
+    assert "shift = late" in set(b.tested["description"])
+    late = b.tested.set_index("description").loc["shift = late"]
+    assert (int((whole["shift"] == "late").sum()), int((whole["shift"] == "early").sum())) == \
+        (late["n_rows"], b.tested.set_index("description").loc["shift = early", "n_rows"])
+
+
+def test_items_with_the_same_rows_are_kept_once(client):
+    """Candidates of one column with the same rows (compared by hash on the workers) are kept
+    once, the first as in memory: here every parcel ships Monday 9:00 or Tuesday 17:00."""
+    frame = _table(n=6000, seed=5)
+    rng = np.random.default_rng(5)
+    monday = rng.random(6000) < 0.3
+    frame["shipped_at"] = np.where(monday, pd.Timestamp("2026-03-02 09:00"), pd.Timestamp("2026-03-03 17:00"))
+    frame["pred"] = np.where(monday & (rng.random(6000) < 0.3), (frame["label"] + 1) % 10, frame["pred"])
+    ddf = _uneven(frame, [1000, 2500, 2500])
+    a = sf.find_slices(frame, label="label", prediction="pred", id_column="parcel_id")
+    b = sf.find_slices(ddf, label="label", prediction="pred", id_column="parcel_id", client=client)
+    _assert_same(a, b)
+    tested = set(b.tested["description"])
+    assert {"hour of shipped_at = 9", "hour of shipped_at = 17"} <= tested
+    assert not {"weekday of shipped_at = Mon", "weekday of shipped_at = Tue"} & tested
+    assert "hour of shipped_at = 9" in b.table.loc[0, "description"]
+
+
+def test_smallest_keys_are_a_stable_argsort_head():
+    """The sample's rows: the k smallest keys in key order, ties by position."""
+    from slicefind.distributed import _smallest
+
+    keys = np.random.default_rng(0).integers(0, 50, 1000).astype(float)   # many ties
+    for k in (1, 7, 100, 999, 1000, 5000):
+        assert np.argsort(keys, kind="stable")[:k].tolist() == _smallest(keys, k).tolist()
+
+
+def test_numeric_cuts_from_a_sample(client):
+    """With fewer sample rows than rows, cut points come from the sample and still find the
+    planted threshold; the same seed gives the same items."""
+    from slicefind.distributed import mine_dask
+    from slicefind.slices import default_min_rows
+
+    frame = _table(n=12_000, seed=6)
+    ddf = _uneven(frame, [5000, 1000, 6000])
+    runs = [mine_dask(ddf, label="label", prediction="pred", exclude=["parcel_id"], client=client,
+                      min_rows_for=default_min_rows, min_errors_for=lambda n, k, m: 3,
+                      sample_rows=3000, random_state=seed) for seed in (0, 0, 1)]
+    texts = [[item.text for item in run.items.items] for run in runs]
+    assert texts[0] == texts[1]
+    assert texts[0] != texts[2]                  # other rows drawn, other quantile cuts
+    assert "belt_speed >= 2.2" in texts[0] and "belt_speed >= 2.2" in texts[2]
+    assert 12_000 == runs[0].table.n_rows and "sample pass" in runs[0].seconds
+
+
 def test_unsupported_options_are_named(client):
     """Options the Dask engine does not take yet are refused by name."""
     ddf = dd.from_pandas(_table(n=1000), npartitions=2)
-    with pytest.raises(sf.SlicefindValueError, match="with a Dask DataFrame, embeddings, error_kind cannot be used yet"):
+    with pytest.raises(sf.SlicefindValueError, match="with a Dask DataFrame, embeddings cannot be used yet"):
         sf.find_slices(ddf, label="label", prediction="pred", embeddings=np.zeros((1000, 2)),
                        error_kind="false_negative", client=client)
+    with pytest.raises(sf.SlicefindValueError, match="with a Dask DataFrame, engine cannot be used yet"):
+        sf.find_slices(ddf, label="label", prediction="pred", engine="mlxtend", client=client)
     with pytest.raises(sf.SlicefindTypeError, match="with a Dask DataFrame, label= must be a column name"):
         sf.find_slices(ddf, label=np.zeros(1000), prediction="pred", client=client)
     with pytest.raises(sf.SlicefindValueError, match="prediction='preds' is not a column of data. Did you mean 'pred'"):

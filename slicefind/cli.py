@@ -265,17 +265,35 @@ def _read_dask(pattern: str, scheduler: str | None):
     return frame, (Client(scheduler) if scheduler else None)
 
 
+def _npy_rows(path: str, start: int, stop: int) -> np.ndarray:
+    """Rows start:stop of a .npy file (read on a Dask worker)."""
+    return np.array(np.load(path, mmap_mode="r", allow_pickle=False)[start:stop])
+
+
 def _dask_embeddings(value: str, frame):
-    """--embeddings with --engine dask: a .npy file (read memory-mapped, sent to the workers
-    partition by partition) or the name of the data's vector column (or several comma-separated
-    columns, one per dimension)."""
+    """--embeddings with --engine dask: a .npy file (a dask array whose pieces the workers
+    read from the file themselves, so it must be on a path they see) or the name of the
+    data's vector column (or several comma-separated columns, one per dimension)."""
     from slicefind.table import SlicefindValueError
 
     if os.path.exists(value):
         if not value.lower().endswith(".npy"):
             raise SlicefindValueError(f"--embeddings {value!r}: with --engine dask give a .npy file "
                                       "or name the data's vector column(s).")
-        return np.load(value, mmap_mode="r", allow_pickle=False)
+        import dask
+        import dask.array as da
+
+        path = os.path.abspath(value)
+        header = np.load(path, mmap_mode="r", allow_pickle=False)
+        if header.ndim != 2:
+            raise SlicefindValueError(f"--embeddings {value!r} holds an array of shape {header.shape}; "
+                                      "it must be (n_rows, d).")
+        step = max(1, 2**27 // max(1, header.shape[1] * header.dtype.itemsize))   # ~128 MB pieces
+        pieces = [da.from_delayed(dask.delayed(_npy_rows)(path, a, min(a + step, header.shape[0])),
+                                  shape=(min(a + step, header.shape[0]) - a, header.shape[1]),
+                                  dtype=header.dtype)
+                  for a in range(0, header.shape[0], step)]
+        return da.concatenate(pieces) if pieces else da.zeros((0, header.shape[1]))
     names = [v.strip() for v in value.split(",") if v.strip()]
     missing = [v for v in names if v not in frame.columns]
     if missing or not names:

@@ -55,10 +55,10 @@ from slicefind.items import (CONDITIONAL_ITEMS, Item, ItemSet, _Builder, categor
 from slicefind.rules import search_levels
 from slicefind.stats import fisher_greater
 from slicefind.table import (CATEGORICAL, DATETIME, ERROR_KINDS, MAX_INT_LEVELS, NUMERIC,
-                             EvalTable, SlicefindTypeError, SlicefindValueError, _equal, _suggest,
-                             column_kind)
+                             EvalTable, SlicefindTypeError, SlicefindValueError, _check_hashable, _equal,
+                             _suggest, column_kind, embedding_columns)
 
-__all__ = ["is_dask_frame", "DaskMined", "mine_dask", "SAMPLE_ROWS"]
+__all__ = ["is_dask_frame", "DaskMined", "DaskRows", "mine_dask", "SAMPLE_ROWS"]
 
 #: rows gathered to the driver to fit numeric cut points (all rows when the table is smaller)
 SAMPLE_ROWS = 200_000
@@ -258,6 +258,7 @@ def _profile(part: pd.DataFrame, index: int, how: dict, columns: Sequence[str]) 
                         missing=int(counts[0]), missing_errors=int(error_counts[0]))
             codes_of[column] = (codes, dtype.categories)
         else:
+            _check_hashable(part, column, where=f" of partition {index}")
             missing = series.isna().to_numpy()
             info.update(missing=int(missing.sum()), missing_errors=int((missing & errors).sum()))
             if pd.api.types.is_float_dtype(dtype) and series.nunique() > _FLOAT_DISTINCT_CAP:
@@ -451,6 +452,218 @@ def _gather_column(part: pd.DataFrame, column: str) -> np.ndarray:
 
 
 # ---------------------------------------------------------------------------------------
+# embedding clusters: fitted on a sample gathered to the driver, rows placed per partition
+
+def _part_vectors(part: pd.DataFrame, chunk, names: tuple, kept: dict | None) -> dict:
+    """One partition's embeddings, checked over all its rows as in memory, then cut to
+    the analysed rows (the rows `kept` keeps). Returns the vectors and a summary."""
+    from slicefind.table import vectors_of
+
+    x = vectors_of(part, names, " of its partition") if names else np.asarray(chunk)
+    if x.ndim != 2 and len(x):
+        raise SlicefindValueError(f"embeddings must be two-dimensional (n_rows, d); a partition's "
+                                  f"piece has shape {x.shape}.")
+    if x.dtype.kind != "f":
+        if x.dtype.kind not in "iub":
+            raise SlicefindTypeError(f"embeddings must be numeric; a partition holds {x.dtype} values.")
+        x = x.astype(np.float64)
+    bad = ~np.isfinite(x) if len(x) else np.zeros((0, 0), dtype=bool)
+    first = None
+    if bad.any():
+        row, col = (int(v) for v in np.argwhere(bad)[0])
+        first = (row, col, float(x[row, col]))
+    if kept is not None:
+        x = x[bitset.unpack(kept["keep"], kept["n"])[0]]
+    return {"x": np.ascontiguousarray(x), "n_input": len(part) if names else len(chunk),
+            "d": int(x.shape[1]) if x.ndim == 2 else 0, "bad_rows": int(bad.any(axis=1).sum()) if bad.size else 0,
+            "first_bad": first}
+
+
+def _vector_summary(vectors: dict) -> dict:
+    return {k: v for k, v in vectors.items() if k != "x"}
+
+
+def _vector_hashes(vectors: dict) -> np.ndarray:
+    from slicefind.clusters import _row_hashes
+
+    x = vectors["x"]
+    return _row_hashes(x) if len(x) else np.zeros(0, dtype=np.uint64)
+
+
+def _take_vectors(vectors: dict, rows: np.ndarray) -> np.ndarray:
+    return vectors["x"][rows]
+
+
+def _place_part(vectors: dict, hashes: np.ndarray, fitted, fit_hashes: np.ndarray,
+                fit_order: np.ndarray) -> dict:
+    """Labels and coordinates of one partition's rows.
+
+    A row equal to a fitted row takes that row's results (in memory every copy of a
+    distinct row shares its results); the others are placed by `Fitted.place`, the code
+    the in-memory engine places its unsampled rows with."""
+    x = vectors["x"]
+    n = x.shape[0]
+    labels = {k: np.empty(n, dtype=np.int64) for k in fitted.labels}
+    coords = np.empty((n, fitted.coords.shape[1]), dtype=np.float32)
+    map_xy = np.empty((n, 2), dtype=np.float32) if fitted.map_xy is not None else None
+    where = np.minimum(np.searchsorted(fit_hashes, hashes), fit_hashes.size - 1)
+    j = fit_order[where]
+    copy = fit_hashes[where] == hashes
+    copy[copy] = np.all(x[copy] == fitted.vectors[j[copy]], axis=1)
+    for k in labels:
+        labels[k][copy] = fitted.labels[k][j[copy]]
+    coords[copy] = fitted.coords[j[copy]]
+    if map_xy is not None:
+        map_xy[copy] = fitted.map_xy[j[copy]]
+    others = np.flatnonzero(~copy)
+    if others.size:
+        got_labels, got_coords, got_map = fitted.place(x[others])
+        for k, v in got_labels.items():
+            labels[k][others] = v
+        coords[others] = got_coords
+        if map_xy is not None:
+            map_xy[others] = got_map
+    return {"labels": labels, "coords": coords, "map_xy": map_xy}
+
+
+def _block_inside(block: dict, n_clusters: Mapping[str, int], *placed: dict) -> dict:
+    """Per item and cluster, the rows of the item inside the cluster, over a block's
+    partitions (`describe.enriched_items` needs them; the item bitsets live here)."""
+    rows = block["rows"]
+    out = {k: np.zeros((rows.size, m), dtype=np.int64) for k, m in n_clusters.items()}
+    for bits, got in zip(block["bits"], placed):
+        for k, m in n_clusters.items():
+            lab = got["labels"][k]
+            for c in range(m):
+                member = lab == c
+                if member.any():
+                    out[k][:, c] += np.bitwise_count(bits[rows] & bitset.pack(member)[0]).sum(
+                        axis=1, dtype=np.int64)
+    return out
+
+
+class DaskRows:
+    """The embedding rows of a Dask table, for `clusters.cluster_slices` (`MemoryRows` is
+    the in-memory one): vectors stay on the workers, partition by partition.
+
+    Distinct rows come from 64-bit row hashes gathered to the driver (8 bytes a row),
+    where the in-memory engine also compares the vectors of equal hashes: two different
+    vectors with equal hashes (odds about n**2 / 2**65, 3 in a million at 10M rows) would
+    count as one distinct row here. The fit sample's vectors are gathered to the driver;
+    every partition then places its own rows, in parallel, by the same code as in memory
+    (a row's result depends on that row alone), so both engines give the same clusters.
+    """
+
+    def __init__(self, client, vectors: list, part_rows: Sequence[int], blocks: list,
+                 block_parts: Sequence[Sequence[int]], block_workers: Sequence):
+        self.client = client
+        self.parts = vectors
+        self.offsets = np.concatenate([[0], np.cumsum(part_rows)]).astype(np.int64)
+        self.blocks, self.block_parts, self.block_workers = blocks, block_parts, block_workers
+        self.hashes = client.map(_vector_hashes, vectors, pure=False)
+        self._inside = None
+
+    def distinct(self, errors: np.ndarray):
+        self.all_hashes = np.concatenate(self.client.gather(self.hashes))
+        codes, _ = pd.factorize(self.all_hashes, sort=False)
+        n_distinct = int(codes.max()) + 1 if codes.size else 0
+        first = np.full(n_distinct, codes.size, dtype=np.int64)
+        np.minimum.at(first, codes, np.arange(codes.size))
+        self.first = first.astype(np.intp)
+        return self.first, np.bincount(codes, weights=errors, minlength=n_distinct) > 0
+
+    def vectors(self, rows: np.ndarray) -> np.ndarray:
+        """The vectors of sorted analysed rows, gathered from their partitions."""
+        part = np.searchsorted(self.offsets, rows, side="right") - 1
+        futures = [self.client.submit(_take_vectors, self.parts[p], rows[part == p] - self.offsets[p],
+                                      pure=False) for p in np.unique(part)]
+        return np.concatenate(self.client.gather(futures))
+
+    def place(self, fitted, fit: np.ndarray, progress: bool):
+        fit_hashes = self.all_hashes[self.first[fit]]
+        order = np.argsort(fit_hashes, kind="stable")
+        self.all_hashes = None
+        shared = self.client.scatter(fitted, broadcast=True, hash=False)
+        k = len(self.parts)
+        placed = self.client.map(_place_part, self.parts, self.hashes, [shared] * k,
+                                 [fit_hashes[order]] * k, [order] * k, pure=False)
+        n_clusters = {key: int(v.max(initial=-1)) + 1 for key, v in fitted.labels.items()}
+        inside = [self.client.submit(_block_inside, block, n_clusters, *[placed[i] for i in parts],
+                                     pure=False, allow_other_workers=True,
+                                     workers=None if worker is None else [worker])
+                  for block, parts, worker in zip(self.blocks, self.block_parts, self.block_workers)]
+        done = self.client.gather(placed)
+        self._inside = {key: np.sum([got[key] for got in self.client.gather(inside)], axis=0)
+                        for key in n_clusters} if inside else None
+        labels = {key: np.concatenate([d["labels"][key] for d in done]) for key in fitted.labels}
+        coords = np.concatenate([d["coords"] for d in done])
+        map_xy = np.concatenate([d["map_xy"] for d in done]) if fitted.map_xy is not None else None
+        return labels, coords, map_xy
+
+    def inside(self, labels):
+        return self._inside
+
+
+def _embedding_pieces(client, embeddings, names: tuple, raw_parts: list, kept, input_rows):
+    """Futures of every partition's checked embeddings (`_part_vectors`), from columns of
+    the data, a numpy array (sent piece by piece) or a dask array (cut to the partitions)."""
+    k = len(raw_parts)
+    n_input = int(sum(input_rows))
+    kept = kept if kept is not None else [None] * k
+    if names:
+        chunks = [None] * k
+    else:
+        if type(embeddings).__module__.split(".")[0] == "dask":
+            if any(np.isnan(c) for c in embeddings.chunks[0]):
+                raise SlicefindValueError("embeddings is a dask array of unknown chunk sizes; call "
+                                          "its compute_chunk_sizes() first.")
+            array = embeddings
+        else:
+            try:
+                array = embeddings if isinstance(embeddings, np.ndarray) else np.asarray(embeddings)
+            except (TypeError, ValueError):
+                array = None
+            if array is None or array.dtype == object:
+                msg = ("with a Dask DataFrame, embeddings= must name columns of data or be a numpy "
+                       f"or dask array; got {type(embeddings).__name__}.")
+                raise SlicefindTypeError(msg)
+        if array.ndim != 2:
+            raise SlicefindValueError(f"embeddings must be two-dimensional (n_rows, d); got shape {array.shape}.")
+        if array.shape[0] != n_input:
+            raise SlicefindValueError(f"embeddings has {array.shape[0]} rows but data has {n_input}; "
+                                      "they must match row for row.")
+        if array.shape[1] == 0:
+            raise SlicefindValueError("embeddings has 0 columns; it needs at least one dimension.")
+        sizes = (tuple(int(r) for r in input_rows), array.shape[1])
+        if isinstance(array, np.ndarray):       # pieces in the graph: a lost worker's is recomputed
+            import dask.array as da
+
+            cut = da.from_array(array, chunks=sizes)
+        else:
+            cut = array.rechunk(sizes)
+        chunks = client.compute(list(cut.to_delayed().ravel()))
+    vectors = client.map(_part_vectors, raw_parts, chunks, [names] * k, kept, pure=False)
+    summaries = client.gather(client.map(_vector_summary, vectors, pure=False))
+    dims = [s["d"] for s in summaries if s["n_input"]]
+    if dims and any(d != dims[0] for d in dims):
+        where = next(i for i, s in enumerate(summaries) if s["n_input"] and s["d"] != dims[0])
+        raise SlicefindValueError(f"embeddings have {dims[0]} dimensions in partition 0 but "
+                                  f"{summaries[where]['d']} in partition {where}; every row needs one "
+                                  "vector of the same length.")
+    if dims and dims[0] == 0:
+        raise SlicefindValueError("embeddings has 0 columns; it needs at least one dimension.")
+    starts = np.concatenate([[0], np.cumsum([s["n_input"] for s in summaries])])
+    bad = [(i, s) for i, s in enumerate(summaries) if s["first_bad"] is not None]
+    if bad:
+        i, s = bad[0]
+        row, col, value = s["first_bad"]
+        msg = (f"embeddings holds {sum(t['bad_rows'] for _, t in bad)} rows with NaN or inf, first "
+               f"at row {int(starts[i]) + row} (column {col}: {value!r}); drop or impute them first.")
+        raise SlicefindValueError(msg)
+    return vectors
+
+
+# ---------------------------------------------------------------------------------------
 # the driver
 
 def _join_packed(pieces: Sequence[np.ndarray], sizes: Sequence[int]) -> np.ndarray:
@@ -475,6 +688,7 @@ class DaskMined:
     n_partitions: int
     part_rows: tuple = ()                   # analysed rows per partition
     seconds: Mapping[str, float] = field(default_factory=dict)   # per phase of mine_dask
+    embedding_rows: Any = None              # a DaskRows when embeddings= was given
 
     def rule_bitset(self, terms: np.ndarray) -> np.ndarray:
         """The packed rows of a rule over all rows (gathered from every block)."""
@@ -553,14 +767,16 @@ def _spread(client, delayed: list) -> list:
 
 
 def _default_client():
-    """The current distributed client, or a new local cluster of 2 worker processes."""
+    """The current distributed client, or a new local cluster of 2 worker processes (whose
+    own logs are silenced: a bad partition's error reaches the caller as the exception,
+    without the workers' copy of its traceback)."""
     from distributed import Client, LocalCluster, get_client
 
     try:
         return get_client()
     except ValueError:
         cluster = LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
-                               dashboard_address=None)
+                               dashboard_address=None, silence_logs=logging.CRITICAL)
         return Client(cluster)
 
 
@@ -675,7 +891,7 @@ class _Clock:
 
 def mine_dask(data, *, label=None, prediction=None, errors=None, loss=None, threshold=None,
               exclude: Sequence[str] = (), id_column: str | None = None, client=None,
-              error_kind: str = "all", positive=None, true_class=None,
+              error_kind: str = "all", positive=None, true_class=None, embeddings=None,
               min_rows_for, min_errors_for, n_bins: int = 4, tree_depth: int = 2,
               max_terms: int = 3, random_state=0, sample_rows: int = SAMPLE_ROWS) -> DaskMined:
     """Run the item and rule passes on a dask DataFrame; see the module docstring.
@@ -723,16 +939,18 @@ def mine_dask(data, *, label=None, prediction=None, errors=None, loss=None, thre
             raise SlicefindValueError(f"threshold must be a finite number; got {threshold!r}.")
         how, used = {"kind": "loss", "loss": loss, "threshold": float(threshold)}, {"loss": loss}
         definition = f"{loss} > {threshold:g}"
+    emb_names = embedding_columns(embeddings, columns)
     filtering = error_kind != "all" or true_class is not None
     if filtering and label is None:
         msg = "error_kind= and true_class= need label= and prediction= (not errors= or loss=)."
         raise SlicefindValueError(msg)
     client = client or _default_client()
     seed = int(np.random.default_rng(random_state).integers(2**31))
-    not_mined = set(exclude) | set(used.values()) | ({id_column} if id_column else set())
+    not_mined = (set(exclude) | set(used.values()) | ({id_column} if id_column else set())
+                 | set(emb_names))
     candidates = [c for c in columns if c not in not_mined]
 
-    parts = _spread(client, data.to_delayed())
+    parts = raw_parts = _spread(client, data.to_delayed())
     n_parts = len(parts)
     kept = None
     if filtering:
@@ -773,6 +991,12 @@ def mine_dask(data, *, label=None, prediction=None, errors=None, loss=None, thre
         msg = (f"every one of the {n:,} rows analysed is an error ({definition}); "
                "slices need correct rows to compare against. Check label=/prediction=.")
         raise SlicefindValueError(msg)
+    vectors = None
+    if embeddings is not None:            # checked before the raw partitions are let go
+        input_rows = [p["n"] for p in pre] if filtering else part_rows
+        vectors = _embedding_pieces(client, embeddings, emb_names, raw_parts, kept, input_rows)
+        clock.mark("embeddings pass")
+    del raw_parts
     min_rows = min_rows_for(n)
     min_errors = min_errors_for(n, k_total, min_rows)
     builder = _Builder(np.zeros(0, dtype=bool), min_rows, min_errors)
@@ -782,6 +1006,7 @@ def mine_dask(data, *, label=None, prediction=None, errors=None, loss=None, thre
     for column in columns:
         if column in not_mined:
             skipped[column] = ("excluded" if column in exclude else "id column" if column == id_column
+                               else "embeddings column" if column in emb_names
                                else f"{next(r for r, c in used.items() if c == column)} column")
             continue
         infos = [p["columns"][column] for p in profiles]
@@ -935,9 +1160,11 @@ def mine_dask(data, *, label=None, prediction=None, errors=None, loss=None, thre
     _log.debug("dask engine, %d partitions, %s rows: %s", n_parts, f"{n:,}",
                ", ".join(f"{k} {v:.2f} s" for k, v in clock.seconds.items()),
                extra={"seconds": dict(clock.seconds)})
+    rows = (None if vectors is None else
+            DaskRows(client, vectors, part_rows, blocks, block_parts, block_workers))
     return DaskMined(table=table, items=items, counts=counts, client=client, blocks=blocks,
                      block_parts=block_parts, block_workers=block_workers, n_partitions=n_parts,
-                     part_rows=part_rows, seconds=dict(clock.seconds))
+                     part_rows=part_rows, seconds=dict(clock.seconds), embedding_rows=rows)
 
 
 def _datetime_position(item: Item) -> int:

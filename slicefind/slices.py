@@ -236,8 +236,11 @@ def find_slices(
         Instead of label/prediction: booleans or 0/1, true for an error.
     loss, threshold : str or array-like, float, optional
         Instead: a per-row loss; a row is an error when ``loss > threshold``.
-    embeddings : (n, d) array, optional
-        Row embeddings for clusters (see the embedding issue); validated here.
+    embeddings : (n, d) array, column name or list of column names, optional
+        Row embeddings for clusters: an array, a column of data holding one vector per
+        row, or one column per dimension (those columns are not mined). With a Dask
+        DataFrame: column names, a numpy array or a dask array; the clusters are fitted
+        on a sample gathered to the driver and every partition places its own rows.
     exclude : sequence of str, default=()
         Columns never mined.
     max_terms : int, default=3
@@ -305,11 +308,9 @@ def find_slices(
     from slicefind.distributed import is_dask_frame
 
     if is_dask_frame(data):
-        unsupported = [name for name, given in (("embeddings", embeddings is not None),) if given]
-        if unsupported or engine != "bitset":
-            names = unsupported + (["engine"] if engine != "bitset" else [])
-            msg = (f"with a Dask DataFrame, {', '.join(names)} cannot be used yet; compute() a "
-                   "sample into pandas for those, or leave them at their defaults.")
+        if engine != "bitset":
+            msg = (f"with a Dask DataFrame, engine={engine!r} cannot be used (the Dask engine counts "
+                   "with the bitset kernel); leave engine at its default.")
             raise SlicefindValueError(msg)
         from slicefind.distributed import mine_dask
 
@@ -317,13 +318,16 @@ def find_slices(
                           threshold=threshold, id_column=id_column, client=client,
                           exclude=(exclude,) if isinstance(exclude, str) else tuple(exclude),
                           error_kind=error_kind, positive=positive,
-                          true_class=true_class, min_rows_for=rows_for, min_errors_for=errors_for,
-                          n_bins=n_bins, max_terms=max_terms, random_state=random_state)
+                          true_class=true_class, embeddings=embeddings, min_rows_for=rows_for,
+                          min_errors_for=errors_for, n_bins=n_bins, max_terms=max_terms,
+                          random_state=random_state)
         table, items, counts = mined.table, mined.items, mined.counts
         n, k_total = table.n_rows, table.n_errors
         min_rows, min_errors = rows_for(n), errors_for(n, k_total, rows_for(n))
         rule_bitset = mined.rule_bitset
+        embedding_rows = mined.embedding_rows
     else:
+        embedding_rows = None
         table = build_eval_table(data, label=label, prediction=prediction, errors=errors, loss=loss,
                                  threshold=threshold, embeddings=embeddings, exclude=exclude,
                                  error_kind=error_kind, positive=positive, true_class=true_class,
@@ -355,12 +359,14 @@ def find_slices(
     # clusters (when embeddings are given) join the same family of tests
     cluster_extra: dict[str, Any] = {}
     extra_slices: list[Slice] = []
-    if table.embeddings is not None and clusters != "none":
+    has_embeddings = table.embeddings is not None or embedding_rows is not None
+    if has_embeddings and clusters != "none":
         from slicefind.clusters import cluster_slices
 
         options = dict(cluster_options or {})
         options.setdefault("items", items)
-        result = cluster_slices(table, strategy=clusters, random_state=random_state, **options)
+        result = cluster_slices(table, strategy=clusters, random_state=random_state,
+                                source=embedding_rows, **options)
         extra_slices = list(result.slices)
         cluster_extra = {"clusters": result}
     if extra_slices:
@@ -455,7 +461,7 @@ def find_slices(
                   confidence_level=confidence_level, engine=engine, error_kind=error_kind,
                   n_bins=n_bins, exclude=list(exclude), n_items=len(items),
                   n_tested=len(tested), error_definition=table.error_definition,
-                  clusters=clusters if table.embeddings is not None else "none",
+                  clusters=clusters if has_embeddings else "none",
                   merge_jaccard=merge_jaccard)
     return FoundSlices(table=table_df, tested=tested, eval_table=table, params=params,
                        _rows=slice_rows, extras={"items": items, "counts": counts, **cluster_extra})

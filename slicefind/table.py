@@ -153,8 +153,9 @@ def _equal(a: np.ndarray, b: np.ndarray) -> np.ndarray:
     return np.array([x == y for x, y in zip(a.tolist(), b.tolist())], dtype=bool)
 
 
-def _check_hashable(data: pd.DataFrame, column) -> None:
-    """Raise if an object column holds unhashable cells (lists, dicts, arrays)."""
+def _check_hashable(data: pd.DataFrame, column, where: str = "") -> None:
+    """Raise if an object column holds unhashable cells (lists, dicts, arrays); `where`
+    follows the row number in the message (" of partition 3")."""
     series = data[column]
     if series.dtype != object:
         return
@@ -162,7 +163,7 @@ def _check_hashable(data: pd.DataFrame, column) -> None:
         try:
             hash(value)
         except TypeError:
-            msg = (f"column {column!r} holds an unhashable value at row {i} "
+            msg = (f"column {column!r} holds an unhashable value at row {i}{where} "
                    f"({type(value).__name__}: {str(value)[:40]!r}); pass exclude=[{column!r}] "
                    "to leave it out, or pass vectors through embeddings=.")
             raise SlicefindTypeError(msg) from None
@@ -432,7 +433,7 @@ def vectors_of(frame: pd.DataFrame, names: tuple[str, ...], where: str = "") -> 
     if out.dtype.kind not in "fiub":
         first = frame[names[0]].iloc[0]
         msg = (f"embeddings column{'s' if len(names) > 1 else ''} {', '.join(map(repr, names))} must "
-               f"hold numbers (a vector per row); got values such as {first!r}{where}.")
+               f"hold numbers (a vector per row); got values such as {first!r}.")
         raise SlicefindTypeError(msg)
     return out
 

@@ -56,11 +56,15 @@ def _assert_same(a, b):
 
 
 def _uneven(frame, sizes):
-    """The frame as a dask DataFrame of partitions of the given sizes."""
+    """The frame as a dask DataFrame of partitions of the given sizes (object columns, such
+    as a column of vectors, kept as they are, as dd.read_parquet loads a list column)."""
+    import dask
+
     bounds = np.cumsum([0] + list(sizes))
     assert bounds[-1] == len(frame)
-    return dd.concat([dd.from_pandas(frame.iloc[a:b], npartitions=1)
-                      for a, b in zip(bounds[:-1], bounds[1:])])
+    with dask.config.set({"dataframe.convert-string": False}):
+        return dd.concat([dd.from_pandas(frame.iloc[a:b], npartitions=1)
+                          for a, b in zip(bounds[:-1], bounds[1:])])
 
 
 @pytest.fixture(scope="module")
@@ -293,14 +297,174 @@ def test_numeric_cuts_from_a_sample(client):
 
 
 def test_unsupported_options_are_named(client):
-    """Options the Dask engine does not take yet are refused by name."""
+    """Options the Dask engine does not take are refused by name."""
     ddf = dd.from_pandas(_table(n=1000), npartitions=2)
-    with pytest.raises(sf.SlicefindValueError, match="with a Dask DataFrame, embeddings cannot be used yet"):
-        sf.find_slices(ddf, label="label", prediction="pred", embeddings=np.zeros((1000, 2)),
-                       error_kind="false_negative", client=client)
-    with pytest.raises(sf.SlicefindValueError, match="with a Dask DataFrame, engine cannot be used yet"):
+    with pytest.raises(sf.SlicefindValueError, match="with a Dask DataFrame, engine='mlxtend' cannot be used"):
         sf.find_slices(ddf, label="label", prediction="pred", engine="mlxtend", client=client)
     with pytest.raises(sf.SlicefindTypeError, match="with a Dask DataFrame, label= must be a column name"):
         sf.find_slices(ddf, label=np.zeros(1000), prediction="pred", client=client)
     with pytest.raises(sf.SlicefindValueError, match="prediction='preds' is not a column of data. Did you mean 'pred'"):
         sf.find_slices(ddf, label="label", prediction="preds", client=client)
+
+
+# ---------------------------------------------------------------- embedding clusters
+
+def _with_vectors(n=6000, seed=0, d=12):
+    """The depot table plus a vector column 'emb' (one float32 array per row): three blobs,
+    the third erring more, and the last 300 rows copies of the first 300 (duplicates that
+    land in other partitions)."""
+    from sklearn.datasets import make_blobs
+
+    frame = _table(n=n, seed=seed)
+    x, blob = make_blobs(n_samples=n, centers=3, n_features=d, random_state=seed, cluster_std=1.5)
+    x = x.astype(np.float32)
+    x[n - 300:], blob[n - 300:] = x[:300], blob[:300]
+    wrong = np.random.default_rng(seed + 1).random(n) < np.where(blob == 2, 0.35, 0.05)
+    frame["pred"] = np.where(wrong, (frame["label"] + 1) % 10, frame["label"])
+    frame["emb"] = list(x)
+    return frame, x
+
+
+#: small enough that the fit runs on a sample and the map on part of it
+SAMPLED = {"sample_above": 2000, "sample_size": 1500, "map_size": 500}
+UNEVEN = [500, 1400, 150, 1250, 900, 700, 1100]
+
+
+def _same_clusters(a, b):
+    """Tables, tests, slice rows, labels, coordinates and map of two scans are equal."""
+    pd.testing.assert_frame_equal(a.table, b.table)
+    pd.testing.assert_frame_equal(a.tested, b.tested)
+    for sid in a.table["slice_id"]:
+        assert a.rows(sid).tolist() == b.rows(sid).tolist()
+    ca, cb = a.extras["clusters"], b.extras["clusters"]
+    assert ca.labels.keys() == cb.labels.keys()
+    for key in ca.labels:
+        assert np.array_equal(ca.labels[key], cb.labels[key])
+    assert np.array_equal(ca.coords, cb.coords)
+    assert np.array_equal(ca.map_xy, cb.map_xy)
+    assert ca.diagnostics["n_distinct"] == cb.diagnostics["n_distinct"]
+
+
+def test_embedding_clusters_identical_to_in_memory(client):
+    """With a vector column the Dask engine fits on the same sample and places every row on
+    its own partition: table, tests, rows, labels, coordinates and map equal in-memory's."""
+    frame, x = _with_vectors()
+    ddf = _uneven(frame, UNEVEN)
+    opts = dict(label="label", prediction="pred", cluster_options=SAMPLED)
+    a = sf.find_slices(frame.drop(columns="emb"), embeddings=x, **opts)
+    b = sf.find_slices(ddf, embeddings="emb", client=client, **opts)
+    _same_clusters(a, b)
+    clusters = b.extras["clusters"]
+    assert clusters.diagnostics["sampled"] and 1500 == clusters.diagnostics["n_fit"]
+    assert 6000 - 300 == clusters.diagnostics["n_distinct"]
+    assert {"rule", "region", "error_mode"} == set(b.tested["source"])
+    assert (b.table["source"] != "rule").any()
+    assert "embeddings column" == b.eval_table.skipped["emb"]
+    # the cluster descriptions count items on the workers: the same text as in memory
+    assert any("errors" in d for d in b.table.loc[b.table["source"] != "rule", "description"])
+
+
+def test_embeddings_as_arrays_and_columns_give_one_result(client):
+    """A numpy array, a dask array chunked unlike the partitions and one column per
+    dimension all give the result of the vector column, with a row filter (false negatives)."""
+    da = pytest.importorskip("dask.array")
+    frame, x = _with_vectors(n=3000, seed=2, d=6)
+    frame["label"] = frame["label"] % 2
+    frame["pred"] = frame["pred"] % 2
+    dims = {f"e{j}": x[:, j] for j in range(6)}
+    sizes = [400, 900, 300, 1400]
+    opts = dict(label="label", prediction="pred", error_kind="false_negative", client=client,
+                cluster_options={"sample_above": 1000, "sample_size": 800})
+    base = sf.find_slices(_uneven(frame, sizes), embeddings="emb", **opts)
+    memory = sf.find_slices(frame.drop(columns="emb"), embeddings=x,
+                            **{k: v for k, v in opts.items() if k != "client"})
+    _same_clusters(memory, base)
+    plain = frame.drop(columns="emb")
+    for embeddings, data in ((x, plain), (da.from_array(x, chunks=(700, 3)), plain),
+                             (list(dims), plain.assign(**dims))):
+        _same_clusters(base, sf.find_slices(_uneven(data, sizes), embeddings=embeddings, **opts))
+
+
+def test_bad_embeddings_are_named(client):
+    """A missing column, vectors of other lengths, NaN and a wrong row count get errors that
+    name the column, the partition or the row."""
+    frame, x = _with_vectors(n=2000, seed=4, d=4)
+    opts = dict(label="label", prediction="pred", client=client)
+    with pytest.raises(sf.SlicefindValueError, match="embeddings names 'embs', which is not a column of data. Did you mean 'emb'"):
+        sf.find_slices(_uneven(frame, [1000, 1000]), embeddings="embs", **opts)
+    short = frame.copy()
+    short.at[1500, "emb"] = np.zeros(3, dtype=np.float32)
+    with pytest.raises(sf.SlicefindValueError, match=r"embeddings column 'emb' holds vectors of 4 and 3 values \(row 500 of its partition\)"):
+        sf.find_slices(_uneven(short, [1000, 1000]), embeddings="emb", **opts)
+    other = frame.copy()
+    other["emb"] = [v[:3] for v in x]
+    mixed = pd.concat([frame.iloc[:1000], other.iloc[1000:]])
+    with pytest.raises(sf.SlicefindValueError, match="embeddings have 4 dimensions in partition 0 but 3 in partition 1"):
+        sf.find_slices(_uneven(mixed, [1000, 1000]), embeddings="emb", **opts)
+    holes = x.copy()
+    holes[1234, 2] = np.nan
+    with pytest.raises(sf.SlicefindValueError, match=r"embeddings holds 1 rows with NaN or inf, first at row 1234 \(column 2: nan\)"):
+        sf.find_slices(_uneven(frame.drop(columns="emb"), [1000, 1000]), embeddings=holes, **opts)
+    with pytest.raises(sf.SlicefindValueError, match="embeddings has 1999 rows but data has 2000"):
+        sf.find_slices(_uneven(frame.drop(columns="emb"), [1000, 1000]), embeddings=x[:-1], **opts)
+    with pytest.raises(sf.SlicefindTypeError, match="embeddings= must name columns of data or be a numpy or dask array; got dict"):
+        sf.find_slices(_uneven(frame.drop(columns="emb"), [1000, 1000]), embeddings={"a": 1}, **opts)
+
+
+def test_cli_scan_with_dask_engine_and_vector_column(client, tmp_path, capsys):
+    """`slicefind scan FOLDER --engine dask --embeddings COL` writes the slices.csv of the
+    in-memory scan of the same rows with the vectors from a .npy file."""
+    from slicefind.cli import main
+
+    frame, x = _with_vectors(n=3000, seed=5, d=8)
+    folder = tmp_path / "logs"
+    folder.mkdir()
+    for i, (a, b) in enumerate([(0, 1100), (1100, 1900), (1900, 3000)]):
+        frame.iloc[a:b].to_parquet(folder / f"part-{i}.parquet", index=False)
+    frame.drop(columns="emb").to_parquet(tmp_path / "all.parquet", index=False)
+    np.save(tmp_path / "emb.npy", x)
+    common = ["--label", "label", "--prediction", "pred", "--exclude", "parcel_id"]
+    assert 0 == main(["scan", str(folder), *common, "--engine", "dask", "--embeddings", "emb",
+                      "--out", str(tmp_path / "ws_dask")])
+    assert "emb (embeddings column)" in capsys.readouterr().out
+    assert 0 == main(["scan", str(tmp_path / "all.parquet"), *common, "--embeddings",
+                      str(tmp_path / "emb.npy"), "--out", str(tmp_path / "ws_memory")])
+    want = pd.read_csv(tmp_path / "ws_memory" / "slices.csv")
+    pd.testing.assert_frame_equal(want, pd.read_csv(tmp_path / "ws_dask" / "slices.csv"))
+    assert (want["source"] != "rule").any()
+    # the .npy file read by the workers piece by piece (the vector column left unmined)
+    assert 0 == main(["scan", str(folder), *common, "emb", "--engine", "dask", "--embeddings",
+                      str(tmp_path / "emb.npy"), "--out", str(tmp_path / "ws_npy")])
+    pd.testing.assert_frame_equal(want, pd.read_csv(tmp_path / "ws_npy" / "slices.csv"))
+    assert 1 == main(["scan", str(folder), *common, "--engine", "dask", "--embeddings", "vectors",
+                      "--out", str(tmp_path / "ws_bad")])
+    assert "--embeddings 'vectors' is neither a file nor a column of DATA." in capsys.readouterr().err
+
+
+def test_worker_killed_before_rows_are_placed_changes_nothing(client, monkeypatch):
+    """A worker killed after the fit, holding vectors, item bitsets and partitions, is
+    replaced; its pieces are recomputed (a numpy array's pieces are part of the graph) and
+    the clusters equal the in-memory ones."""
+    import os
+
+    import slicefind.distributed as engine
+
+    frame, x = _with_vectors(n=3000, seed=6, d=6)
+    plain = frame.drop(columns="emb")
+    opts = dict(label="label", prediction="pred", cluster_options={"sample_above": 1000, "sample_size": 800})
+    expected = sf.find_slices(plain, embeddings=x, **opts)
+    workers = list(client.scheduler_info()["workers"])
+    place = engine.DaskRows.place
+
+    def place_after_a_kill(self, *args, **kwargs):
+        try:
+            client.run(lambda: os._exit(1), workers=[workers[0]])
+        except Exception:        # the worker dies before it can answer
+            pass
+        return place(self, *args, **kwargs)
+
+    monkeypatch.setattr(engine.DaskRows, "place", place_after_a_kill)
+    got = sf.find_slices(_uneven(plain, [700, 1300, 1000]), embeddings=x, client=client, **opts)
+    client.wait_for_workers(2, timeout=60)
+    assert workers[0] not in client.scheduler_info()["workers"]
+    _same_clusters(expected, got)

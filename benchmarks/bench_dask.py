@@ -2,8 +2,10 @@
 
 Generates n rows x 20 categorical columns (2-10 levels, skewed level frequencies, two
 planted conjunctions), written as Parquet partitions of 1M rows. Each measurement runs
-in a fresh subprocess; peak memory is ru_maxrss of that process and, for the Dask
-engine, of each worker process (read on the workers with client.run after the scan).
+in a fresh subprocess; peak memory is the peak resident set (VmHWM) of that process and,
+for the Dask engine, of each worker process (read on the workers with client.run after
+the scan). (Not ru_maxrss: Linux carries it over from the parent across fork and exec, so
+a child of a parent that has just generated the data would report the parent's size.)
 The Dask scan time includes reading the Parquet files (``dd.read_parquet`` is lazy); the
 in-memory engine's reading is its "load s", outside its scan time. Before the clock starts
 the workers import what the in-memory process has imported by then or imports while
@@ -31,7 +33,6 @@ from __future__ import annotations
 import argparse
 import json
 import os
-import resource
 import subprocess
 import sys
 import tempfile
@@ -86,6 +87,15 @@ SCAN = {"rules": dict(errors="wrong"),
                            cluster_options={"progress": False})}
 
 
+def peak_mb() -> float:
+    """Peak resident set of this process in MB (VmHWM of /proc/self/status)."""
+    with open("/proc/self/status") as handle:
+        for line in handle:
+            if line.startswith("VmHWM:"):
+                return int(line.split()[1]) / 1024
+    return float("nan")
+
+
 def _child(mode: str, folder: str, out: str) -> None:
     """One measurement in this (fresh) process; writes a JSON result to `out`."""
     import slicefind as sf
@@ -103,7 +113,7 @@ def _child(mode: str, folder: str, out: str) -> None:
         found = sf.find_slices(frame, **options)
         result["load_s"] = loaded - start
         result["scan_s"] = time.perf_counter() - loaded
-        result["peak_mb"] = {"driver": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024}
+        result["peak_mb"] = {"driver": peak_mb()}
     else:
         import logging
 
@@ -131,9 +141,8 @@ def _child(mode: str, folder: str, out: str) -> None:
             found = sf.find_slices(frame, client=client, **options)
             result["load_s"] = 0.0
             result["scan_s"] = time.perf_counter() - start
-            workers = client.run(lambda: __import__("resource").getrusage(
-                __import__("resource").RUSAGE_SELF).ru_maxrss / 1024)
-            result["peak_mb"] = {"driver": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024,
+            workers = client.run(peak_mb)
+            result["peak_mb"] = {"driver": peak_mb(),
                                  **{f"worker{i}": v for i, v in enumerate(workers.values())}}
     result["table"] = found.table[["description", "n_rows", "n_errors", "p_value"]].to_dict("list")
     result["tested"] = [int(len(found.tested)), int(found.tested["n_rows"].sum()),

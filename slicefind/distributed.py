@@ -56,7 +56,8 @@ from slicefind.rules import search_levels
 from slicefind.stats import fisher_greater
 from slicefind.table import (CATEGORICAL, DATETIME, ERROR_KINDS, MAX_INT_LEVELS, NUMERIC,
                              EvalTable, SlicefindTypeError, SlicefindValueError, _check_hashable, _equal,
-                             _suggest, column_kind, embedding_columns)
+                             _suggest, column_kind, embedding_columns,
+                             positive_class)
 
 __all__ = ["is_dask_frame", "DaskMined", "DaskRows", "mine_dask", "SAMPLE_ROWS"]
 
@@ -76,18 +77,21 @@ def is_dask_frame(data) -> bool:
 # ---------------------------------------------------------------------------------------
 # partition tasks (pure functions of a partition and of earlier results on it)
 
-def _check_complete(part: pd.DataFrame, how: dict) -> None:
-    """Labels and predictions of one partition have no missing values (as in memory)."""
+def _check_complete(part: pd.DataFrame, how: dict, index: int) -> None:
+    """Labels and predictions of partition `index` have no missing values (as in memory)."""
     for column in (how["label"], how["prediction"]):
-        if part[column].isna().any():
-            raise SlicefindValueError(f"column {column!r} has missing values in a partition; "
-                                      "labels and predictions must be complete.")
+        missing = part[column].isna().to_numpy()
+        if missing.any():
+            msg = (f"column {column!r} has {int(missing.sum())} missing values (NaN/None) in "
+                   f"partition {index}, first at its row {int(np.flatnonzero(missing)[0])}; drop "
+                   "those rows or fill them before calling.")
+            raise SlicefindValueError(msg)
 
 
-def _errors_of(part: pd.DataFrame, how: dict) -> np.ndarray:
-    """The error flags of one partition, as `table.build_eval_table` derives them."""
+def _errors_of(part: pd.DataFrame, how: dict, index: int) -> np.ndarray:
+    """The error flags of partition `index`, as `table.build_eval_table` derives them."""
     if how["kind"] == "label":
-        _check_complete(part, how)
+        _check_complete(part, how, index)
         return ~_equal(part[how["label"]].to_numpy(), part[how["prediction"]].to_numpy())
     if how["kind"] == "errors":
         flags = part[how["errors"]]
@@ -124,7 +128,7 @@ def _label_classes(part: pd.DataFrame, index: int, how: dict, columns: Sequence[
     if not _has_columns(part, columns, how):
         out["incomplete"] = True
         return out
-    _check_complete(part, how)             # over every row, before any is left out
+    _check_complete(part, how, index)      # over every row, before any is left out
     label = part[how["label"]].to_numpy()
     out["classes"] = pd.unique(pd.Series(label, dtype=object))
     if how["true_class"] is not None:
@@ -240,7 +244,7 @@ def _profile(part: pd.DataFrame, index: int, how: dict, columns: Sequence[str]) 
     schema = {c: str(part[c].dtype) for c in part.columns}
     if not _has_columns(part, columns, how):
         return {"summary": {"index": index, "n": len(part), "schema": schema, "incomplete": True}}
-    errors = _errors_of(part, how)
+    errors = _errors_of(part, how, index)
     infos: dict[str, Any] = {}
     codes_of: dict[str, tuple] = {}
     buffers = _Buffers(len(part))
@@ -839,25 +843,6 @@ def _merge_uniques(infos: list):
     return uniques, counts, error_counts
 
 
-def _positive_class(error_kind: str, positive, classes: np.ndarray):
-    """The positive class for error_kind=, inferred for binary labels, checked, as in memory."""
-    present = set(classes.tolist())
-    if positive is None:
-        if len(classes) > 2:
-            msg = (f"error_kind={error_kind!r} is for binary tasks, but label has {len(classes)} "
-                   "classes; pass positive= to name the positive class.")
-            raise SlicefindValueError(msg)
-        positive = 1 if 1 in present else (True if True in present else None)
-        if positive is None:
-            msg = (f"error_kind={error_kind!r} needs positive=, the positive class; labels are "
-                   f"{sorted(map(str, classes))!r}.")
-            raise SlicefindValueError(msg)
-    if positive not in present:
-        msg = f"positive={positive!r} is not a label value; labels are {sorted(map(str, classes))[:10]!r}."
-        raise SlicefindValueError(msg)
-    return positive
-
-
 #: from this many rows on, the driver loads its compiled kernels while the workers count
 _WARM_DRIVER_ROWS = 100_000
 
@@ -963,7 +948,7 @@ def mine_dask(data, *, label=None, prediction=None, errors=None, loss=None, thre
         classes = pd.unique(pd.Series(np.concatenate([np.asarray(p["classes"], dtype=object)
                                                       for p in pre]), dtype=object))
         if error_kind != "all":
-            how = dict(how, positive=_positive_class(error_kind, positive, classes))
+            how = dict(how, positive=positive_class(error_kind, positive, classes))
             definition = f"{error_kind.replace('_', ' ')} (positive = {how['positive']!r})"
         if true_class is not None:
             if sum(p["n_true_class"] for p in pre) == 0:

@@ -291,6 +291,7 @@ def find_slices(
     >>> print(found.table.loc[0, "description"])
     scanner = S3 and shift = night
     """
+    exclude = (exclude,) if isinstance(exclude, str) else tuple(exclude)
     max_terms, min_rows, min_errors = _check_params(max_terms, min_rows, min_errors,
                                                     fdr, confidence_level, engine, clusters,
                                                     merge_jaccard)
@@ -316,7 +317,7 @@ def find_slices(
 
         mined = mine_dask(data, label=label, prediction=prediction, errors=errors, loss=loss,
                           threshold=threshold, id_column=id_column, client=client,
-                          exclude=(exclude,) if isinstance(exclude, str) else tuple(exclude),
+                          exclude=exclude,
                           error_kind=error_kind, positive=positive,
                           true_class=true_class, embeddings=embeddings, min_rows_for=rows_for,
                           min_errors_for=errors_for, n_bins=n_bins, max_terms=max_terms,

@@ -315,19 +315,7 @@ def build_eval_table(
             msg = "error_kind= and true_class= need label= and prediction= (not errors= or loss=)."
             raise SlicefindValueError(msg)
     if error_kind != "all":
-        classes = pd.unique(pd.Series(label_values, dtype=object))
-        if positive is None:
-            if len(classes) > 2:
-                msg = (f"error_kind={error_kind!r} is for binary tasks, but label has {len(classes)} "
-                       "classes; pass positive= to name the positive class.")
-                raise SlicefindValueError(msg)
-            positive = 1 if 1 in set(classes.tolist()) else (True if True in set(classes.tolist()) else None)
-            if positive is None:
-                msg = f"error_kind={error_kind!r} needs positive=, the positive class; labels are {sorted(map(str, classes))!r}."
-                raise SlicefindValueError(msg)
-        if positive not in set(classes.tolist()):
-            msg = f"positive={positive!r} is not a label value; labels are {sorted(map(str, classes))[:10]!r}."
-            raise SlicefindValueError(msg)
+        positive = positive_class(error_kind, positive, pd.unique(pd.Series(label_values, dtype=object)))
         is_pos = _equal(label_values, np.full(len(label_values), positive, dtype=object))
         keep &= ~is_pos if error_kind == "false_positive" else is_pos
         definition = f"{error_kind.replace('_', ' ')} (positive = {positive!r})"
@@ -391,6 +379,26 @@ def build_eval_table(
         error_definition=definition,
         columns_used=used,
     )
+
+
+def positive_class(error_kind: str, positive, classes: np.ndarray):
+    """The positive class for `error_kind`: `positive` checked against the label values
+    `classes`, or inferred (1 or True) for binary labels; a clear error otherwise."""
+    present = set(classes.tolist())
+    if positive is None:
+        if len(classes) > 2:
+            msg = (f"error_kind={error_kind!r} is for binary tasks, but label has {len(classes)} "
+                   "classes; pass positive= to name the positive class.")
+            raise SlicefindValueError(msg)
+        positive = 1 if 1 in present else (True if True in present else None)
+        if positive is None:
+            msg = (f"error_kind={error_kind!r} needs positive=, the positive class; labels are "
+                   f"{sorted(map(str, classes))!r}.")
+            raise SlicefindValueError(msg)
+    if positive not in present:
+        msg = f"positive={positive!r} is not a label value; labels are {sorted(map(str, classes))[:10]!r}."
+        raise SlicefindValueError(msg)
+    return positive
 
 
 def _role(used: Mapping[str, str], column: str) -> str:

@@ -223,7 +223,7 @@ def test_missing_label_in_a_left_out_row_is_still_an_error(client):
     frame.loc[2500, "label"] = np.nan
     with pytest.raises(sf.SlicefindValueError, match="label"):
         sf.find_slices(frame, label="label", prediction="pred", error_kind="false_negative", positive=1.0)
-    with pytest.raises(sf.SlicefindValueError, match=r"column 'label' has missing values in a partition"):
+    with pytest.raises(sf.SlicefindValueError, match=r"column 'label' has 1 missing values \(NaN/None\) in partition 2, first at its row 500"):
         sf.find_slices(dd.from_pandas(frame, npartitions=3), label="label", prediction="pred",
                        error_kind="false_negative", positive=1.0, client=client)
 

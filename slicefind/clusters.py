@@ -478,6 +478,42 @@ def _vote(nn, query: np.ndarray, label_sets: list[np.ndarray], coord_sets: list[
 
 
 @dataclass(frozen=True, repr=False)
+class Placed:
+    """Where some rows landed: a label per row for each key ("region", "error_mode"), the
+    layout coordinates and the map coordinates (None without a map)."""
+
+    labels: Mapping[str, np.ndarray]
+    coords: np.ndarray
+    map_xy: np.ndarray | None
+
+    @classmethod
+    def empty(cls, like: "Placed", n: int) -> "Placed":
+        """Room for `n` rows, with the keys and widths of `like`."""
+        return cls({k: np.empty(n, dtype=np.int64) for k in like.labels},
+                   np.empty((n, like.coords.shape[1]), dtype=np.float32),
+                   None if like.map_xy is None else np.empty((n, 2), dtype=np.float32))
+
+    @classmethod
+    def concat(cls, parts: list["Placed"]) -> "Placed":
+        first = parts[0]
+        return cls({k: np.concatenate([p.labels[k] for p in parts]) for k in first.labels},
+                   np.concatenate([p.coords for p in parts]),
+                   None if first.map_xy is None else np.concatenate([p.map_xy for p in parts]))
+
+    def take(self, rows) -> "Placed":
+        return Placed({k: v[rows] for k, v in self.labels.items()}, self.coords[rows],
+                      None if self.map_xy is None else self.map_xy[rows])
+
+    def put(self, rows, other: "Placed") -> None:
+        """Write `other`'s rows at `rows` (an index array or a slice)."""
+        for k, v in other.labels.items():
+            self.labels[k][rows] = v
+        self.coords[rows] = other.coords
+        if self.map_xy is not None:
+            self.map_xy[rows] = other.map_xy
+
+
+@dataclass(frozen=True, repr=False)
 class Fitted:
     """What the fit on the (sampled) distinct rows leaves for placing every other row.
 
@@ -495,24 +531,24 @@ class Fitted:
     coords: np.ndarray
     map_xy: np.ndarray | None
 
-    def place(self, x: np.ndarray, nn=None):
-        """(labels per key, coords, map or None) of rows `x` placed by their nearest fitted
-        rows in the PCA space, as `cluster_slices` places the unsampled rows."""
+    def own(self) -> Placed:
+        """The fitted rows' own results."""
+        return Placed(self.labels, self.coords, self.map_xy)
+
+    def place(self, x: np.ndarray, nn=None) -> Placed:
+        """Rows `x` placed by their nearest fitted rows in the PCA space, as
+        `cluster_slices` places the unsampled rows."""
         keys = list(self.labels)
         coord_sets = [self.coords] + ([self.map_xy] if self.map_xy is not None else [])
         nn = nn if nn is not None else _neighbours(self.zf, self.n_neighbors)
-        labels = {k: np.empty(x.shape[0], dtype=np.int64) for k in keys}
-        coords = np.empty((x.shape[0], self.coords.shape[1]), dtype=np.float32)
-        map_xy = np.empty((x.shape[0], 2), dtype=np.float32) if self.map_xy is not None else None
+        out = Placed.empty(self.own(), x.shape[0])
         for lo in range(0, x.shape[0], _BLOCK):
             z = _project(x[lo:lo + _BLOCK], self.mean, self.axes, self.metric)
             got_labels, got_coords = _vote(nn, z, [self.labels[k] for k in keys], coord_sets)
-            for k, v in zip(keys, got_labels):
-                labels[k][lo:lo + z.shape[0]] = v
-            coords[lo:lo + z.shape[0]] = got_coords[0]
-            if map_xy is not None:
-                map_xy[lo:lo + z.shape[0]] = got_coords[1]
-        return labels, coords, map_xy
+            out.put(slice(lo, lo + z.shape[0]),
+                    Placed(dict(zip(keys, got_labels)), got_coords[0],
+                           got_coords[1] if self.map_xy is not None else None))
+        return out
 
 
 def _sample(err: np.ndarray, size: int, max_errors: int, rng) -> np.ndarray:
@@ -779,7 +815,8 @@ def cluster_slices(
     # every row: copies of fitted rows directly, the others by their nearest fitted rows
     fitted = Fitted(mean=mean, axes=axes, metric=metric, n_neighbors=n_neighbors, vectors=xf,
                     zf=zf, labels=labels_f, coords=coords_f, map_xy=map_f)
-    labels, coords, map_xy = source.place(fitted, fit, progress)
+    placed = source.place(fitted, fit, progress)
+    labels, coords, map_xy = placed.labels, placed.coords, placed.map_xy
     lap("assign")
 
     if items is None:
@@ -826,7 +863,7 @@ class MemoryRows:
 
     A source of rows answers four questions: `distinct` (the first row of each distinct
     vector, in row order, and whether any copy is an error), `vectors` (the embeddings of
-    some rows), `place` (labels and coordinates of every row once the fit is done) and
+    some rows), `place` (a `Placed` of every row once the fit is done) and
     `inside` (per-cluster item counts, or None to count on the items' bitsets). The Dask
     engine's source (`slicefind.distributed`) answers them partition by partition."""
 
@@ -842,32 +879,19 @@ class MemoryRows:
     def vectors(self, rows: np.ndarray) -> np.ndarray:
         return self.x[rows]
 
-    def place(self, fitted: Fitted, fit: np.ndarray, progress: bool):
+    def place(self, fitted: Fitted, fit: np.ndarray, progress: bool) -> Placed:
         from tqdm.auto import tqdm
 
-        n_distinct = self.first.size
-        labels_d = {k: np.empty(n_distinct, dtype=np.int64) for k in fitted.labels}
-        coords_d = np.empty((n_distinct, fitted.coords.shape[1]), dtype=np.float32)
-        map_d = np.empty((n_distinct, 2), dtype=np.float32) if fitted.map_xy is not None else None
-        for k, v in fitted.labels.items():
-            labels_d[k][fit] = v
-        coords_d[fit] = fitted.coords
-        if map_d is not None:
-            map_d[fit] = fitted.map_xy
-        rest = np.setdiff1d(np.arange(n_distinct), fit, assume_unique=True)
+        distinct = Placed.empty(fitted.own(), self.first.size)
+        distinct.put(fit, fitted.own())
+        rest = np.setdiff1d(np.arange(self.first.size), fit, assume_unique=True)
         if rest.size:
             nn = _neighbours(fitted.zf, fitted.n_neighbors)
             blocks = range(0, rest.size, _BLOCK)
             for lo in tqdm(blocks, desc="assigning rows to clusters", disable=not progress, leave=False):
                 block = rest[lo:lo + _BLOCK]
-                got_labels, got_coords, got_map = fitted.place(self.x[self.first[block]], nn)
-                for k, v in got_labels.items():
-                    labels_d[k][block] = v
-                coords_d[block] = got_coords
-                if map_d is not None:
-                    map_d[block] = got_map
-        labels = {k: v[self.inverse] for k, v in labels_d.items()}
-        return labels, coords_d[self.inverse], None if map_d is None else map_d[self.inverse]
+                distinct.put(block, fitted.place(self.x[self.first[block]], nn))
+        return distinct.take(self.inverse)
 
     def inside(self, labels) -> None:
         return None

@@ -49,6 +49,7 @@ import numpy as np
 import pandas as pd
 
 from slicefind import bitset
+from slicefind.clusters import Placed, _row_hashes
 from slicefind.items import (CONDITIONAL_ITEMS, Item, ItemSet, _Builder, categorical_items,
                              code_mask, datetime_masks, numeric_cuts, numeric_masks,
                              numeric_values)
@@ -57,7 +58,7 @@ from slicefind.stats import fisher_greater
 from slicefind.table import (CATEGORICAL, DATETIME, ERROR_KINDS, MAX_INT_LEVELS, NUMERIC,
                              EvalTable, SlicefindTypeError, SlicefindValueError, _check_hashable, _equal,
                              _suggest, column_kind, embedding_columns,
-                             positive_class)
+                             nonfinite_message, nonfinite_rows, positive_class, vectors_of)
 
 __all__ = ["is_dask_frame", "DaskMined", "DaskRows", "mine_dask", "SAMPLE_ROWS"]
 
@@ -148,14 +149,14 @@ def _keep_mask(part: pd.DataFrame, how: dict) -> np.ndarray:
     return keep
 
 
-def _analysed(part: pd.DataFrame, how: dict) -> pd.DataFrame:
-    """The kept rows of one partition (every later task reads these)."""
-    return part.iloc[np.flatnonzero(_keep_mask(part, how))]
-
-
 def _kept(part: pd.DataFrame, how: dict) -> dict:
     """The kept rows of one partition, packed, and its number of rows."""
     return {"n": len(part), "keep": bitset.pack(_keep_mask(part, how))[0]}
+
+
+def _analysed(part: pd.DataFrame, kept: dict) -> pd.DataFrame:
+    """The kept rows of one partition (every later task reads these)."""
+    return part.iloc[np.flatnonzero(bitset.unpack(kept["keep"], kept["n"])[0])]
 
 
 class _Buffers:
@@ -169,21 +170,20 @@ class _Buffers:
 
     def __init__(self, n: int):
         self.n = n
-        self._mask = self._other = None
+        self._held: dict[str, np.ndarray] = {}
 
-    def mask(self, n: int) -> np.ndarray:
+    def _buffer(self, slot: str, n: int) -> np.ndarray:
         if n != self.n:                    # (error rows: small, allocated as needed)
             return np.empty(n, dtype=bool)
-        if self._mask is None:
-            self._mask = np.empty(n, dtype=bool)
-        return self._mask
+        if slot not in self._held:
+            self._held[slot] = np.empty(n, dtype=bool)
+        return self._held[slot]
+
+    def mask(self, n: int) -> np.ndarray:
+        return self._buffer("mask", n)
 
     def other(self, n: int) -> np.ndarray:
-        if n != self.n:
-            return np.empty(n, dtype=bool)
-        if self._other is None:
-            self._other = np.empty(n, dtype=bool)
-        return self._other
+        return self._buffer("other", n)
 
 
 #: columns with at most this many values are counted and masked value by value (no temporaries)
@@ -461,8 +461,6 @@ def _gather_column(part: pd.DataFrame, column: str) -> np.ndarray:
 def _part_vectors(part: pd.DataFrame, chunk, names: tuple, kept: dict | None) -> dict:
     """One partition's embeddings, checked over all its rows as in memory, then cut to
     the analysed rows (the rows `kept` keeps). Returns the vectors and a summary."""
-    from slicefind.table import vectors_of
-
     x = vectors_of(part, names, " of its partition") if names else np.asarray(chunk)
     if x.ndim != 2 and len(x):
         raise SlicefindValueError(f"embeddings must be two-dimensional (n_rows, d); a partition's "
@@ -471,16 +469,11 @@ def _part_vectors(part: pd.DataFrame, chunk, names: tuple, kept: dict | None) ->
         if x.dtype.kind not in "iub":
             raise SlicefindTypeError(f"embeddings must be numeric; a partition holds {x.dtype} values.")
         x = x.astype(np.float64)
-    bad = ~np.isfinite(x) if len(x) else np.zeros((0, 0), dtype=bool)
-    first = None
-    if bad.any():
-        row, col = (int(v) for v in np.argwhere(bad)[0])
-        first = (row, col, float(x[row, col]))
+    bad_rows, first = nonfinite_rows(x) if x.ndim == 2 else (0, None)
     if kept is not None:
         x = x[bitset.unpack(kept["keep"], kept["n"])[0]]
     return {"x": np.ascontiguousarray(x), "n_input": len(part) if names else len(chunk),
-            "d": int(x.shape[1]) if x.ndim == 2 else 0, "bad_rows": int(bad.any(axis=1).sum()) if bad.size else 0,
-            "first_bad": first}
+            "d": int(x.shape[1]) if x.ndim == 2 else 0, "bad_rows": bad_rows, "first_bad": first}
 
 
 def _vector_summary(vectors: dict) -> dict:
@@ -488,8 +481,6 @@ def _vector_summary(vectors: dict) -> dict:
 
 
 def _vector_hashes(vectors: dict) -> np.ndarray:
-    from slicefind.clusters import _row_hashes
-
     x = vectors["x"]
     return _row_hashes(x) if len(x) else np.zeros(0, dtype=np.uint64)
 
@@ -499,35 +490,23 @@ def _take_vectors(vectors: dict, rows: np.ndarray) -> np.ndarray:
 
 
 def _place_part(vectors: dict, hashes: np.ndarray, fitted, fit_hashes: np.ndarray,
-                fit_order: np.ndarray) -> dict:
+                fit_order: np.ndarray) -> Placed:
     """Labels and coordinates of one partition's rows.
 
     A row equal to a fitted row takes that row's results (in memory every copy of a
     distinct row shares its results); the others are placed by `Fitted.place`, the code
     the in-memory engine places its unsampled rows with."""
     x = vectors["x"]
-    n = x.shape[0]
-    labels = {k: np.empty(n, dtype=np.int64) for k in fitted.labels}
-    coords = np.empty((n, fitted.coords.shape[1]), dtype=np.float32)
-    map_xy = np.empty((n, 2), dtype=np.float32) if fitted.map_xy is not None else None
     where = np.minimum(np.searchsorted(fit_hashes, hashes), fit_hashes.size - 1)
     j = fit_order[where]
     copy = fit_hashes[where] == hashes
     copy[copy] = np.all(x[copy] == fitted.vectors[j[copy]], axis=1)
-    for k in labels:
-        labels[k][copy] = fitted.labels[k][j[copy]]
-    coords[copy] = fitted.coords[j[copy]]
-    if map_xy is not None:
-        map_xy[copy] = fitted.map_xy[j[copy]]
+    out = Placed.empty(fitted.own(), x.shape[0])
+    out.put(copy, fitted.own().take(j[copy]))
     others = np.flatnonzero(~copy)
     if others.size:
-        got_labels, got_coords, got_map = fitted.place(x[others])
-        for k, v in got_labels.items():
-            labels[k][others] = v
-        coords[others] = got_coords
-        if map_xy is not None:
-            map_xy[others] = got_map
-    return {"labels": labels, "coords": coords, "map_xy": map_xy}
+        out.put(others, fitted.place(x[others]))
+    return out
 
 
 def _block_inside(block: dict, n_clusters: Mapping[str, int], *placed: dict) -> dict:
@@ -537,7 +516,7 @@ def _block_inside(block: dict, n_clusters: Mapping[str, int], *placed: dict) -> 
     out = {k: np.zeros((rows.size, m), dtype=np.int64) for k, m in n_clusters.items()}
     for bits, got in zip(block["bits"], placed):
         for k, m in n_clusters.items():
-            lab = got["labels"][k]
+            lab = got.labels[k]
             for c in range(m):
                 member = lab == c
                 if member.any():
@@ -599,10 +578,7 @@ class DaskRows:
         done = self.client.gather(placed)
         self._inside = {key: np.sum([got[key] for got in self.client.gather(inside)], axis=0)
                         for key in n_clusters} if inside else None
-        labels = {key: np.concatenate([d["labels"][key] for d in done]) for key in fitted.labels}
-        coords = np.concatenate([d["coords"] for d in done])
-        map_xy = np.concatenate([d["map_xy"] for d in done]) if fitted.map_xy is not None else None
-        return labels, coords, map_xy
+        return Placed.concat(done)
 
     def inside(self, labels):
         return self._inside
@@ -661,9 +637,8 @@ def _embedding_pieces(client, embeddings, names: tuple, raw_parts: list, kept, i
     if bad:
         i, s = bad[0]
         row, col, value = s["first_bad"]
-        msg = (f"embeddings holds {sum(t['bad_rows'] for _, t in bad)} rows with NaN or inf, first "
-               f"at row {int(starts[i]) + row} (column {col}: {value!r}); drop or impute them first.")
-        raise SlicefindValueError(msg)
+        raise SlicefindValueError(nonfinite_message(sum(t["bad_rows"] for _, t in bad),
+                                                    int(starts[i]) + row, col, value))
     return vectors
 
 
@@ -689,7 +664,6 @@ class DaskMined:
     blocks: list                            # futures of `_block`s
     block_parts: tuple                      # the partitions of each block, in order
     block_workers: tuple                    # the worker each block was put on
-    n_partitions: int
     part_rows: tuple = ()                   # analysed rows per partition
     seconds: Mapping[str, float] = field(default_factory=dict)   # per phase of mine_dask
     embedding_rows: Any = None              # a DaskRows when embeddings= was given
@@ -955,7 +929,7 @@ def mine_dask(data, *, label=None, prediction=None, errors=None, loss=None, thre
                 raise SlicefindValueError(f"true_class={true_class!r} never occurs in label.")
             definition += f", label = {true_class!r}"
         kept = client.map(_kept, parts, [how] * n_parts, pure=False)
-        parts = client.map(_analysed, parts, [how] * n_parts, pure=False)
+        parts = client.map(_analysed, parts, kept, pure=False)
         clock.mark("rows pass")
 
     profiled = client.map(_profile, parts, range(n_parts), [how] * n_parts,
@@ -1148,7 +1122,7 @@ def mine_dask(data, *, label=None, prediction=None, errors=None, loss=None, thre
     rows = (None if vectors is None else
             DaskRows(client, vectors, part_rows, blocks, block_parts, block_workers))
     return DaskMined(table=table, items=items, counts=counts, client=client, blocks=blocks,
-                     block_parts=block_parts, block_workers=block_workers, n_partitions=n_parts,
+                     block_parts=block_parts, block_workers=block_workers,
                      part_rows=part_rows, seconds=dict(clock.seconds), embedding_rows=rows)
 
 

@@ -465,17 +465,26 @@ def _check_embeddings(embeddings, n_rows: int) -> np.ndarray:
         raise SlicefindValueError(msg)
     if emb.shape[1] == 0:
         raise SlicefindValueError("embeddings has 0 columns; it needs at least one dimension.")
+    bad_rows, first = nonfinite_rows(emb)
+    if first is not None:
+        raise SlicefindValueError(nonfinite_message(bad_rows, *first))
+    return emb
+
+
+def nonfinite_rows(emb: np.ndarray) -> tuple[int, tuple[int, int, float] | None]:
+    """(rows holding NaN or inf, (row, column, value) of the first such value or None),
+    checked in blocks: no n x d mask of the whole array."""
     bad_rows, first = 0, None
-    for start in range(0, emb.shape[0], 65_536):    # blocks: no n x d mask of the whole array
+    for start in range(0, emb.shape[0], 65_536):
         bad = ~np.isfinite(emb[start:start + 65_536])
         if bad.any():
             bad_rows += int(bad.any(axis=1).sum())
             if first is None:
                 row, col = (int(x) for x in np.argwhere(bad)[0])
-                first = (start + row, col)
-    if first is not None:
-        row, col = first
-        msg = (f"embeddings holds {bad_rows} rows with NaN or inf, first at row "
-               f"{row} (column {col}: {float(emb[row, col])!r}); drop or impute them first.")
-        raise SlicefindValueError(msg)
-    return emb
+                first = (start + row, col, float(emb[start + row, col]))
+    return bad_rows, first
+
+
+def nonfinite_message(bad_rows: int, row: int, col: int, value: float) -> str:
+    return (f"embeddings holds {bad_rows} rows with NaN or inf, first at row {row} (column {col}: "
+            f"{value!r}); drop or impute them first.")

@@ -451,6 +451,10 @@ def _block_errors(block: dict) -> list[np.ndarray]:
     return block["errors"]
 
 
+def _identity(value):
+    return value
+
+
 def _gather_column(part: pd.DataFrame, column: str) -> np.ndarray:
     return part[column].to_numpy()
 
@@ -566,7 +570,9 @@ class DaskRows:
         fit_hashes = self.all_hashes[self.first[fit]]
         order = np.argsort(fit_hashes, kind="stable")
         self.all_hashes = None
-        shared = self.client.scatter(fitted, broadcast=True, hash=False)
+        # a task that returns the fit, not scattered data: if a worker holding it dies, the
+        # scheduler recomputes it (a broadcast scatter to a dying worker can hang)
+        shared = self.client.submit(_identity, fitted, pure=False)
         k = len(self.parts)
         placed = self.client.map(_place_part, self.parts, self.hashes, [shared] * k,
                                  [fit_hashes[order]] * k, [order] * k, pure=False)

@@ -32,6 +32,7 @@ from typing import Any, Mapping
 
 import numpy as np
 
+from slicefind.hierarchy import ROOT, Tree, condensed_tree, single_node, subtree_rows, tree_vote
 from slicefind.slices import Slice
 from slicefind.table import EvalTable, SlicefindTypeError, SlicefindValueError
 
@@ -81,10 +82,11 @@ class ClusterResult:
     Attributes
     ----------
     slices : tuple of Slice
-        One per cluster (``source`` "region" or "error_mode"), rows among the analysed rows.
+        One per node of each cluster hierarchy but its root (``source`` "region" or
+        "error_mode"), rows among the analysed rows.
     labels : dict
-        Strategy ("region", "error_mode") -> int label per analysed row; `NOISE` (-1)
-        for rows in no cluster.
+        Strategy ("region", "error_mode") -> HDBSCAN's flat cluster per analysed row;
+        `NOISE` (-1) for rows in no cluster.
     map_xy : (n_rows, 2) float32 array or None
         UMAP map of every analysed row, for figures.
     coords : (n_rows, CLUSTER_DIMS) float32 array
@@ -96,6 +98,11 @@ class ClusterResult:
         per step).
     params : dict
         The options used.
+    nodes : dict
+        Strategy -> the deepest node of its hierarchy holding each analysed row
+        (`slicefind.hierarchy.ROOT`, 0, when no cluster holds it).
+    trees : dict
+        Strategy -> its hierarchy (`slicefind.hierarchy.Tree`).
     """
 
     slices: tuple[Slice, ...]
@@ -104,6 +111,8 @@ class ClusterResult:
     coords: np.ndarray | None
     diagnostics: Mapping[str, Any] = field(default_factory=dict)
     params: Mapping[str, Any] = field(default_factory=dict)
+    nodes: Mapping[str, np.ndarray] = field(default_factory=dict)
+    trees: Mapping[str, Tree] = field(default_factory=dict)
 
     def __repr__(self):
         counts = ", ".join(f"{k}={int(v.max(initial=NOISE)) + 1}" for k, v in self.labels.items())
@@ -364,16 +373,17 @@ def _map(zf: np.ndarray, graph, map_size: int, n_neighbors: int, seed, rng, *, i
     return out
 
 
-def _hdbscan(points: np.ndarray, min_cluster_size: int, min_samples: int) -> np.ndarray:
-    """HDBSCAN labels (`NOISE` = -1) of `points`."""
+def _hdbscan(points: np.ndarray, min_cluster_size: int, min_samples: int) -> tuple[np.ndarray, Tree]:
+    """HDBSCAN's whole condensed tree over `points`: (deepest node of each point, Tree);
+    the tree's ``flat`` holds HDBSCAN's own flat selection, renumbered by size."""
     import hdbscan
 
     if points.shape[0] < 2 * min_cluster_size:
-        return np.full(points.shape[0], NOISE, dtype=np.int64)
+        return np.full(points.shape[0], ROOT, dtype=np.int64), single_node()
     model = hdbscan.HDBSCAN(min_cluster_size=int(min_cluster_size), min_samples=int(min_samples),
                             core_dist_n_jobs=1)
-    labels = model.fit_predict(points.astype(np.float64))
-    return _renumber(labels)
+    flat = _renumber(model.fit_predict(points.astype(np.float64)))
+    return condensed_tree(model.condensed_tree_.to_numpy(), points.shape[0], flat)
 
 
 def _renumber(labels: np.ndarray) -> np.ndarray:
@@ -391,24 +401,26 @@ def _renumber(labels: np.ndarray) -> np.ndarray:
     return out
 
 
-def _extend_modes(coords: np.ndarray, err: np.ndarray, modes: np.ndarray, n_vote: int) -> np.ndarray:
-    """Extend error modes from the error points to every point.
+def _extend_modes(coords: np.ndarray, err: np.ndarray, modes: np.ndarray, tree: Tree,
+                  n_vote: int) -> np.ndarray:
+    """Extend the error-mode tree from the error points to every point.
 
-    A point joins mode m when m wins the vote of its `n_vote` nearest error points and
-    its nearest member of m is no farther than m's cut-off: the 90th percentile, over m's
-    members, of the distance to their `n_vote`-th nearest fellow member. Error points keep
-    their own label. Assumes `modes` holds one label per error point."""
+    A point joins node m when the error points of m's subtree hold a strict majority of
+    its `n_vote` nearest error points and its nearest member of m is no farther than m's
+    cut-off: the 90th percentile, over m's members, of the distance to their
+    `n_vote`-th nearest fellow member. It takes the deepest such node (`tree_vote`).
+    Error points keep their own node. Assumes `modes` holds the deepest node of each
+    error point."""
     from sklearn.neighbors import NearestNeighbors
 
-    out = np.full(coords.shape[0], NOISE, dtype=np.int64)
+    out = np.full(coords.shape[0], ROOT, dtype=np.int64)
     err_idx = np.flatnonzero(err)
     out[err_idx] = modes
-    n_modes = int(modes.max(initial=NOISE)) + 1
-    if n_modes == 0:
+    if tree.n_nodes == 1:
         return out
-    cut = np.zeros(n_modes)
-    for m in range(n_modes):
-        members = coords[err_idx[modes == m]]
+    cut = np.full(tree.n_nodes, np.inf)
+    for m in range(1, tree.n_nodes):
+        members = coords[err_idx[(modes >= m) & (modes < tree.end[m])]]
         k = min(n_vote, members.shape[0] - 1)
         d, _ = NearestNeighbors(n_neighbors=k + 1).fit(members).kneighbors(members)
         cut[m] = np.quantile(d[:, k], 0.9)
@@ -420,23 +432,14 @@ def _extend_modes(coords: np.ndarray, err: np.ndarray, modes: np.ndarray, n_vote
     for lo in range(0, others.size, _BLOCK):
         block = others[lo:lo + _BLOCK]
         d, j = nn.kneighbors(coords[block])
-        lab = modes[j]                                        # (b, k)
-        votes = np.zeros((block.size, n_modes + 1), dtype=np.int32)
-        np.add.at(votes, (np.arange(block.size)[:, None], lab + 1), 1)
-        winner = votes[:, 1:].argmax(axis=1)
-        wins = votes[:, 1:].max(axis=1) * 2 > k               # a strict majority of the votes
-        # distance to the nearest neighbour that belongs to the winner
-        hit = lab == winner[:, None]
-        nearest = np.where(hit, d, np.inf).min(axis=1)
-        ok = wins & (nearest <= cut[winner])
-        out[block[ok]] = winner[ok]
+        out[block] = tree_vote(tree, modes[j], np.ones(j.shape), distances=d, cut=cut)
     return out
 
 
-def _assign(z: np.ndarray, fit: np.ndarray, rest: np.ndarray, label_sets: list[np.ndarray],
+def _assign(z: np.ndarray, fit: np.ndarray, rest: np.ndarray, label_sets: list[tuple[np.ndarray, Tree]],
             coord_sets: list[np.ndarray], n_neighbors: int, progress: bool):
-    """Give the `rest` rows the majority label of their `n_neighbors` nearest fit rows (in
-    the space `z`), for each labelling in `label_sets` (fit-row labels), and the
+    """Give the `rest` rows, for each (fit-row node labels, tree) in `label_sets`, the deepest
+    node their `n_neighbors` nearest fit rows (in the space `z`) vote for, and the
     distance-weighted mean of their coordinates in each of `coord_sets` (`_vote`)."""
     from tqdm.auto import tqdm
 
@@ -458,22 +461,17 @@ def _neighbours(points: np.ndarray, n_neighbors: int):
     return NearestNeighbors(n_neighbors=min(n_neighbors, points.shape[0]), algorithm="brute").fit(points)
 
 
-def _vote(nn, query: np.ndarray, label_sets: list[np.ndarray], coord_sets: list[np.ndarray]):
-    """For each row of `query`: the label its nearest fit rows (`nn`) vote for, weighted by
-    inverse distance, in each labelling of `label_sets`; and the distance-weighted mean of
-    their coordinates in each of `coord_sets`. Row by row: a row's result does not depend
-    on the other rows of the block."""
+def _vote(nn, query: np.ndarray, label_sets: list[tuple[np.ndarray, Tree]], coord_sets: list[np.ndarray]):
+    """For each row of `query`: in each (node labels, tree) of `label_sets`, the deepest
+    node that its nearest fit rows (`nn`) put a majority of their inverse-distance
+    weighted vote in (`tree_vote`); and the distance-weighted mean of their coordinates in
+    each of `coord_sets`. Row by row: a row's result does not depend on the other rows of
+    the block."""
     d, j = nn.kneighbors(query)
     w = 1.0 / (d + 1e-6 * (d[:, -1:] + 1e-12))
-    labels_out, coords_out = [], []
-    for labels in label_sets:
-        lab = labels[j] + 1                               # 0 = noise
-        votes = np.zeros((query.shape[0], int(labels.max(initial=NOISE)) + 2))
-        np.add.at(votes, (np.arange(query.shape[0])[:, None], lab), w)
-        labels_out.append(votes.argmax(axis=1) - 1)
-    for coords in coord_sets:
-        coords_out.append(((coords[j] * w[:, :, None]).sum(axis=1) / w.sum(axis=1, keepdims=True))
-                          .astype(np.float32))
+    labels_out = [tree_vote(tree, labels[j], w) for labels, tree in label_sets]
+    coords_out = [((coords[j] * w[:, :, None]).sum(axis=1) / w.sum(axis=1, keepdims=True)).astype(np.float32)
+                  for coords in coord_sets]
     return labels_out, coords_out
 
 
@@ -518,8 +516,9 @@ class Fitted:
     """What the fit on the (sampled) distinct rows leaves for placing every other row.
 
     ``mean, axes`` are the PCA, ``zf`` the fitted rows' PCA coordinates, ``vectors``
-    their embeddings; ``labels`` maps "region"/"error_mode" to the fitted rows' labels,
-    ``coords`` and ``map_xy`` are their layout and map coordinates."""
+    their embeddings; ``labels`` maps "region"/"error_mode" to the fitted rows' deepest
+    tree nodes and ``trees`` to the hierarchies (`slicefind.hierarchy`), ``coords`` and
+    ``map_xy`` are their layout and map coordinates."""
 
     mean: np.ndarray
     axes: np.ndarray
@@ -528,6 +527,7 @@ class Fitted:
     vectors: np.ndarray
     zf: np.ndarray
     labels: Mapping[str, np.ndarray]
+    trees: Mapping[str, Tree]
     coords: np.ndarray
     map_xy: np.ndarray | None
 
@@ -544,7 +544,8 @@ class Fitted:
         out = Placed.empty(self.own(), x.shape[0])
         for lo in range(0, x.shape[0], _BLOCK):
             z = _project(x[lo:lo + _BLOCK], self.mean, self.axes, self.metric)
-            got_labels, got_coords = _vote(nn, z, [self.labels[k] for k in keys], coord_sets)
+            got_labels, got_coords = _vote(nn, z, [(self.labels[k], self.trees[k]) for k in keys],
+                                            coord_sets)
             out.put(slice(lo, lo + z.shape[0]),
                     Placed(dict(zip(keys, got_labels)), got_coords[0],
                            got_coords[1] if self.map_xy is not None else None))
@@ -698,9 +699,12 @@ def cluster_slices(
     >>> wrong = np.random.default_rng(0).random(600) < np.where(blob == 2, 0.5, 0.05)
     >>> table = build_eval_table(pd.DataFrame({"site": ["a", "b"] * 300}), errors=wrong, embeddings=x)
     >>> result = cluster_slices(table, strategy="regions", random_state=0)
-    >>> result
-    ClusterResult(n_slices=3, region=3)
-    >>> sorted(sl.rows.size for sl in result.slices)
+    >>> result                     # every node of the hierarchy is a candidate slice
+    ClusterResult(n_slices=14, region=3)
+    >>> flat = result.labels["region"]          # HDBSCAN's own flat cut: the three blobs
+    >>> sorted(np.bincount(flat[flat >= 0]).tolist())
+    [200, 200, 200]
+    >>> sorted(sl.rows.size for sl in result.slices if sl.extra["flat"] is not None)
     [200, 200, 200]
     """
     if table.embeddings is None and source is None:
@@ -752,9 +756,9 @@ def cluster_slices(
     if n_distinct < MIN_ROWS_TO_CLUSTER:
         steps.close()
         diagnostics.update(n_fit=0, sampled=False, skipped=f"only {n_distinct} distinct embedding rows")
-        empty = {"region": np.full(n, NOISE), "error_mode": np.full(n, NOISE)}
-        return ClusterResult((), {k: v for k, v in empty.items() if _wanted(k, strategy)}, None, None,
-                             diagnostics, params)
+        keys = [k for k in ("region", "error_mode") if _wanted(k, strategy)]
+        return ClusterResult((), {k: np.full(n, NOISE) for k in keys}, None, None, diagnostics, params,
+                             {k: np.full(n, ROOT) for k in keys}, {k: single_node() for k in keys})
 
     sampled = n_distinct > sample_above
     cap = sample_size // 4 if max_sample_errors is None else max_sample_errors
@@ -788,6 +792,7 @@ def cluster_slices(
     n_fit = fit.size
     err_f = err_any[fit]
     labels_f: dict[str, np.ndarray] = {}
+    trees: dict[str, Tree] = {}
     sizes: dict[str, int] = {}
     if _wanted("region", strategy):
         # regions are clustered on a part of the fit in which errors are as common as in
@@ -795,28 +800,29 @@ def cluster_slices(
         # by nearest neighbours in the layout
         even = _even_part(err_f, float(err_any.mean()), rng) if sampled else np.arange(n_fit)
         mcs = min_cluster_size or default_min_cluster_size(even.size, share=0.005, floor=15)
-        region_f = np.full(n_fit, NOISE, dtype=np.int64)
-        region_f[even] = _hdbscan(coords_f[even], mcs, min_samples or min(10, mcs))
+        region_f = np.full(n_fit, ROOT, dtype=np.int64)
+        region_f[even], trees["region"] = _hdbscan(coords_f[even], mcs, min_samples or min(10, mcs))
         if even.size < n_fit:
             others = np.setdiff1d(np.arange(n_fit), even, assume_unique=True)
-            (region_f[others],), _ = _assign(coords_f, even, others, [region_f[even]], [],
-                                             n_neighbors, progress=False)
+            (region_f[others],), _ = _assign(coords_f, even, others, [(region_f[even], trees["region"])],
+                                             [], n_neighbors, progress=False)
         labels_f["region"] = region_f
         sizes["region"] = mcs
     lap("hdbscan_regions")
     if _wanted("error_mode", strategy):
         n_err_f = int(err_f.sum())
         mcs_e = min_error_cluster_size or default_min_cluster_size(n_err_f, share=0.02, floor=8)
-        modes = _hdbscan(coords_f[err_f], mcs_e, min_samples or min(10, mcs_e))
-        labels_f["error_mode"] = _extend_modes(coords_f, err_f, modes, n_vote=5)
+        modes, trees["error_mode"] = _hdbscan(coords_f[err_f], mcs_e, min_samples or min(10, mcs_e))
+        labels_f["error_mode"] = _extend_modes(coords_f, err_f, modes, trees["error_mode"], n_vote=5)
         sizes["error_mode"] = mcs_e
     lap("hdbscan_error_modes")
 
     # every row: copies of fitted rows directly, the others by their nearest fitted rows
     fitted = Fitted(mean=mean, axes=axes, metric=metric, n_neighbors=n_neighbors, vectors=xf,
-                    zf=zf, labels=labels_f, coords=coords_f, map_xy=map_f)
+                    zf=zf, labels=labels_f, trees=trees, coords=coords_f, map_xy=map_f)
     placed = source.place(fitted, fit, progress)
-    labels, coords, map_xy = placed.labels, placed.coords, placed.map_xy
+    nodes, coords, map_xy = placed.labels, placed.coords, placed.map_xy
+    labels = {k: trees[k].flat[v] for k, v in nodes.items()}
     lap("assign")
 
     if items is None:
@@ -824,7 +830,7 @@ def cluster_slices(
         from slicefind.slices import default_min_rows
 
         items = build_items(table, min_rows=default_min_rows(n), min_errors=1) if table.kinds else None
-    slices = _label_slices(table, labels, items, source.inside(labels))
+    slices = _tree_slices(table, nodes, trees, items, source.inside(trees))
     lap("describe")
     steps.close()
 
@@ -832,29 +838,37 @@ def cluster_slices(
         n_fit=int(n_fit), sampled=bool(sampled), n_graph_components=n_comp, connected=n_comp == 1,
         largest_component_share=largest, fragment_share=fragments, min_cluster_size=sizes,
         n_clusters={k: int(v.max(initial=NOISE)) + 1 for k, v in labels.items()},
+        n_nodes={k: t.n_nodes - 1 for k, t in trees.items()},
         noise_share={k: float(np.mean(v == NOISE)) for k, v in labels.items()})
     return ClusterResult(slices=tuple(slices), labels=labels, map_xy=map_xy, coords=coords,
-                         diagnostics=diagnostics, params=params)
+                         diagnostics=diagnostics, params=params, nodes=nodes, trees=trees)
 
 
-def _label_slices(table: EvalTable, labels: Mapping[str, np.ndarray], items, inside) -> list[Slice]:
-    """One Slice per cluster of each labelling, described by `describe_rows` (with the
-    per-cluster item counts `inside[key]` when the items' bitsets live elsewhere)."""
+def _tree_slices(table: EvalTable, nodes: Mapping[str, np.ndarray], trees: Mapping[str, Tree], items,
+                 inside) -> list[Slice]:
+    """One Slice per node of each hierarchy but the root, in preorder, described by
+    `describe_rows` (with the per-node item counts `inside[key]` when the items' bitsets
+    live elsewhere). ``key`` is ``"region:7"``; ``extra`` holds the node, its parent's key
+    (``""`` under the root) and its flat cluster when HDBSCAN's own cut selected it."""
     from slicefind.describe import describe_rows
 
     slices = []
     for source, key in (("region", "region"), ("error_mode", "error_mode")):
-        if key not in labels:
+        if key not in nodes:
             continue
-        lab = labels[key]
-        for c in range(int(lab.max(initial=NOISE)) + 1):
-            rows = np.flatnonzero(lab == c).astype(np.intp)
+        tree = trees[key]
+        members = subtree_rows(tree, nodes[key])
+        for j in range(1, tree.n_nodes):
+            rows = members[j]
             if rows.size == 0:
                 continue
-            counts = None if inside is None else inside[key][:, c]
+            counts = None if inside is None else inside[key][:, j]
             text = describe_rows(table, rows, items=items, inside=counts)
-            slices.append(Slice(source=source, description=text, rows=rows, key=f"{key}:{c}",
-                                extra={"cluster": c}))
+            up = int(tree.parent[j])
+            selected = tree.flat[j] >= 0 and (up <= ROOT or tree.flat[up] < 0)
+            slices.append(Slice(source=source, description=text, rows=rows, key=f"{key}:{j}",
+                                extra={"node": j, "parent": f"{key}:{up}" if up > ROOT else "",
+                                       "flat": int(tree.flat[j]) if selected else None}))
     return slices
 
 
@@ -893,7 +907,7 @@ class MemoryRows:
                 distinct.put(block, fitted.place(self.x[self.first[block]], nn))
         return distinct.take(self.inverse)
 
-    def inside(self, labels) -> None:
+    def inside(self, trees) -> None:
         return None
 
 

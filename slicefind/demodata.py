@@ -24,7 +24,7 @@ from typing import Mapping
 import numpy as np
 import pandas as pd
 
-__all__ = ["Depot", "Planted", "make_depot", "SCANNERS", "LABEL_STOCKS", "DEPOTS"]
+__all__ = ["Depot", "Planted", "make_depot", "make_stamped", "SCANNERS", "LABEL_STOCKS", "DEPOTS"]
 
 SCANNERS = ("S1", "S2", "S3", "S4", "S5", "S6")
 LABEL_STOCKS = ("matte", "glossy", "thermal")
@@ -263,4 +263,90 @@ def make_depot(n_rows: int = 6000, *, tape_share: float = 0.05, random_state=0) 
         "packing tape": Planted("packing tape", np.flatnonzero(taped).astype(np.intp), (),
                                 "a strip of packing tape across the digit (no column records it)"),
     }
+    return Depot(frame=frame, images=images, embeddings=embeddings, planted=planted)
+
+
+def _stamp(images: np.ndarray, rng) -> np.ndarray:
+    """A customs stamp inked over the lower-left corner of the label: a 3 x 3 block of
+    near-full ink at rows 5-7, columns 0-2 of the image."""
+    out = images.copy()
+    ink = rng.uniform(13.0, INK_MAX, (images.shape[0], 1, 1))
+    out[:, 5:8, 0:3] = np.maximum(out[:, 5:8, 0:3], ink)
+    return out
+
+
+def make_stamped(n_rows: int = 1797, *, stamp_share: float = 0.12, n_components: int = 10,
+                 random_state=0) -> Depot:
+    """A dev set whose one degradation cuts across every class and no column records.
+
+    A border depot scans parcels whose labels the reader knows well: its classifier
+    (`make_depot`'s small MLP) was trained on clean, augmented copies of all 1,797 label
+    designs (scikit-learn's bundled digits), and the dev set shows each design once
+    (with replacement beyond 1,797 rows), with light pixel noise. A customs stamp is
+    inked over the lower-left corner of a random `stamp_share` of the labels; the
+    metadata (``scanner``, ``shift``) says nothing about it. The embeddings are what a
+    user without a model layer at hand would compute: a PCA of the raw pixels to
+    `n_components` dimensions (scikit-learn's PCA).
+
+    Every class is a tight group here and the stamped labels a parallel copy of each, so
+    the stamp's errors fall on many digits at once and a flat HDBSCAN cut tends to split
+    them into one small cluster per digit; the stamp is one node higher up the tree.
+
+    Parameters
+    ----------
+    n_rows : int, default=1797
+        Rows of the dev set, at least 100.
+    stamp_share : float, default=0.12
+        Share of stamped labels, in (0, 0.5].
+    n_components : int, default=10
+        Dimensions of the pixel PCA.
+    random_state : int, Generator or None, default=0
+
+    Returns
+    -------
+    Depot
+        ``frame`` (``parcel_id, scanner, shift, true_digit, read_as``), ``images``,
+        ``embeddings`` and ``planted`` with one entry, "customs stamp", recorded in no column.
+
+    Examples
+    --------
+    >>> data = make_stamped(random_state=0)
+    >>> data
+    Depot(n_rows=1797, n_planted=1, embedding_dim=10)
+    >>> data.planted["customs stamp"].recorded
+    False
+    """
+    if isinstance(n_rows, bool) or not isinstance(n_rows, (int, np.integer)) or n_rows < 100:
+        raise ValueError(f"n_rows must be an integer >= 100; got {n_rows!r}.")
+    if isinstance(stamp_share, bool) or not isinstance(stamp_share, (int, float)) or not 0 < stamp_share <= 0.5:
+        raise ValueError(f"stamp_share must be a number in (0, 0.5]; got {stamp_share!r}.")
+    from sklearn.datasets import load_digits
+    from sklearn.decomposition import PCA
+
+    rng = np.random.default_rng(random_state)
+    digits = load_digits()
+    originals = digits.images.astype(np.float64)
+    targets = digits.target.astype(np.int64)
+    model = _classifier(originals, targets, rng)
+    n = int(n_rows)
+    source = (rng.permutation(len(targets))[:n] if n <= len(targets)
+              else rng.integers(0, len(targets), n))
+    stamped = rng.random(n) < stamp_share
+    images = originals[source].copy()
+    if stamped.any():
+        images[stamped] = _stamp(images[stamped], rng)
+    images = _noise(images, rng, sigma=0.2)
+    flat = images.reshape(n, -1) / INK_MAX
+    pred = model.predict(flat).astype(np.int64)
+    embeddings = PCA(n_components=n_components, random_state=0).fit_transform(flat).astype(np.float32)
+    frame = pd.DataFrame({
+        "parcel_id": [f"B{2_000_000 + i:07d}" for i in range(n)],
+        "scanner": pd.Categorical(rng.choice(np.array(SCANNERS[:4], dtype=object), n), categories=SCANNERS[:4]),
+        "shift": pd.Categorical(rng.choice(np.array(["early", "late", "night"], dtype=object), n),
+                                categories=("early", "late", "night")),
+        "true_digit": targets[source],
+        "read_as": pred,
+    })
+    planted = {"customs stamp": Planted("customs stamp", np.flatnonzero(stamped).astype(np.intp), (),
+                                        "a customs stamp inked over the lower-left corner (no column records it)")}
     return Depot(frame=frame, images=images, embeddings=embeddings, planted=planted)

@@ -50,6 +50,7 @@ import pandas as pd
 
 from slicefind import bitset
 from slicefind.clusters import Placed, _row_hashes
+from slicefind.hierarchy import subtree_sums
 from slicefind.items import (CONDITIONAL_ITEMS, Item, ItemSet, _Builder, categorical_items,
                              code_mask, datetime_masks, numeric_cuts, numeric_masks,
                              numeric_values)
@@ -57,7 +58,7 @@ from slicefind.rules import search_levels
 from slicefind.stats import fisher_greater
 from slicefind.table import (CATEGORICAL, DATETIME, ERROR_KINDS, MAX_INT_LEVELS, NUMERIC,
                              EvalTable, SlicefindTypeError, SlicefindValueError, _check_hashable, _equal,
-                             _suggest, column_kind, embedding_columns,
+                             _suggest, column_kind, embedding_columns, mined_roles,
                              nonfinite_message, nonfinite_rows, positive_class, vectors_of)
 
 __all__ = ["is_dask_frame", "DaskMined", "DaskRows", "mine_dask", "SAMPLE_ROWS"]
@@ -513,19 +514,18 @@ def _place_part(vectors: dict, hashes: np.ndarray, fitted, fit_hashes: np.ndarra
     return out
 
 
-def _block_inside(block: dict, n_clusters: Mapping[str, int], *placed: dict) -> dict:
-    """Per item and cluster, the rows of the item inside the cluster, over a block's
-    partitions (`describe.enriched_items` needs them; the item bitsets live here)."""
+def _block_inside(block: dict, n_nodes: Mapping[str, int], *placed: dict) -> dict:
+    """Per item and deepest tree node, the rows of the item whose deepest node it is, over
+    a block's partitions (`describe.enriched_items` needs the per-node counts, summed
+    over subtrees on the driver; the item bitsets live here)."""
     rows = block["rows"]
-    out = {k: np.zeros((rows.size, m), dtype=np.int64) for k, m in n_clusters.items()}
+    out = {k: np.zeros((rows.size, m), dtype=np.int64) for k, m in n_nodes.items()}
     for bits, got in zip(block["bits"], placed):
-        for k, m in n_clusters.items():
-            lab = got.labels[k]
-            for c in range(m):
-                member = lab == c
-                if member.any():
-                    out[k][:, c] += np.bitwise_count(bits[rows] & bitset.pack(member)[0]).sum(
-                        axis=1, dtype=np.int64)
+        n = got.coords.shape[0]
+        for i, r in enumerate(rows):
+            mask = bitset.unpack(bits[r:r + 1], n)[0]
+            for k, m in n_nodes.items():
+                out[k][i] += np.bincount(got.labels[k][mask], minlength=m)
     return out
 
 
@@ -576,18 +576,21 @@ class DaskRows:
         k = len(self.parts)
         placed = self.client.map(_place_part, self.parts, self.hashes, [shared] * k,
                                  [fit_hashes[order]] * k, [order] * k, pure=False)
-        n_clusters = {key: int(v.max(initial=-1)) + 1 for key, v in fitted.labels.items()}
-        inside = [self.client.submit(_block_inside, block, n_clusters, *[placed[i] for i in parts],
+        n_nodes = {key: tree.n_nodes for key, tree in fitted.trees.items()}
+        inside = [self.client.submit(_block_inside, block, n_nodes, *[placed[i] for i in parts],
                                      pure=False, allow_other_workers=True,
                                      workers=None if worker is None else [worker])
                   for block, parts, worker in zip(self.blocks, self.block_parts, self.block_workers)]
         done = self.client.gather(placed)
         self._inside = {key: np.sum([got[key] for got in self.client.gather(inside)], axis=0)
-                        for key in n_clusters} if inside else None
+                        for key in n_nodes} if inside else None
         return Placed.concat(done)
 
-    def inside(self, labels):
-        return self._inside
+    def inside(self, trees):
+        """Per tree node (subtree), the rows of each item inside it."""
+        if self._inside is None:
+            return None
+        return {key: subtree_sums(trees[key], counts) for key, counts in self._inside.items()}
 
 
 def _embedding_pieces(client, embeddings, names: tuple, raw_parts: list, kept, input_rows):
@@ -858,7 +861,8 @@ def mine_dask(data, *, label=None, prediction=None, errors=None, loss=None, thre
               exclude: Sequence[str] = (), id_column: str | None = None, client=None,
               error_kind: str = "all", positive=None, true_class=None, embeddings=None,
               min_rows_for, min_errors_for, n_bins: int = 4, tree_depth: int = 2,
-              max_terms: int = 3, random_state=0, sample_rows: int = SAMPLE_ROWS) -> DaskMined:
+              max_terms: int = 3, random_state=0, sample_rows: int = SAMPLE_ROWS,
+              mine_label: bool = False) -> DaskMined:
     """Run the item and rule passes on a dask DataFrame; see the module docstring.
 
     The options mean what they mean for `find_slices` (label, prediction, errors and
@@ -911,7 +915,7 @@ def mine_dask(data, *, label=None, prediction=None, errors=None, loss=None, thre
         raise SlicefindValueError(msg)
     client = client or _default_client()
     seed = int(np.random.default_rng(random_state).integers(2**31))
-    not_mined = (set(exclude) | set(used.values()) | ({id_column} if id_column else set())
+    not_mined = (set(exclude) | set(mined_roles(used, mine_label)) | ({id_column} if id_column else set())
                  | set(emb_names))
     candidates = [c for c in columns if c not in not_mined]
 

@@ -28,8 +28,8 @@ TABLE_COLUMNS = ("slice_id", "source", "description") + SCORE_COLUMNS + ("q_valu
 SOURCES = ("rule", "region", "error_mode")
 CLUSTER_CHOICES = ("both", "regions", "error_modes", "none")
 TESTED_COLUMNS = (("description", "source", "n_terms") + SCORE_COLUMNS
-                  + ("q_value", "passed", "parent_p_value", "worse_than_parents", "folded_into",
-                     "explained_by"))
+                  + ("q_value", "passed", "parent_p_value", "worse_than_parents", "too_large",
+                     "folded_into", "explained_by"))
 
 
 @dataclass(frozen=True, repr=False)
@@ -151,7 +151,7 @@ class FoundSlices:
 
 
 def _check_params(max_terms, min_rows, min_errors, fdr, confidence_level, engine,
-                  clusters, merge_jaccard):
+                  clusters, merge_jaccard, distinct_jaccard, max_share):
     """Validate find_slices' options; return (min_rows, min_errors) as ints or None."""
     def _int(name, value, low):
         if isinstance(value, bool) or not isinstance(value, (int, np.integer)):
@@ -172,8 +172,14 @@ def _check_params(max_terms, min_rows, min_errors, fdr, confidence_level, engine
         raise SlicefindValueError(f"engine must be one of {ENGINES}; got {engine!r}.")
     if clusters not in CLUSTER_CHOICES:
         raise SlicefindValueError(f"clusters must be one of {CLUSTER_CHOICES}; got {clusters!r}.")
-    if isinstance(merge_jaccard, bool) or not isinstance(merge_jaccard, (int, float)) or not 0 < merge_jaccard <= 1:
-        raise SlicefindValueError(f"merge_jaccard must be a number in (0, 1]; got {merge_jaccard!r}.")
+    for name, value in (("merge_jaccard", merge_jaccard), ("distinct_jaccard", distinct_jaccard),
+                        ("max_share", max_share)):
+        if isinstance(value, bool) or not isinstance(value, (int, float, np.floating)) or not 0 < value <= 1:
+            raise SlicefindValueError(f"{name} must be a number in (0, 1]; got {value!r}.")
+    if distinct_jaccard > merge_jaccard:
+        msg = (f"distinct_jaccard ({distinct_jaccard!r}) must not exceed merge_jaccard "
+               f"({merge_jaccard!r}).")
+        raise SlicefindValueError(msg)
     return max_terms, min_rows, min_errors
 
 
@@ -215,6 +221,9 @@ def find_slices(
     clusters: str = "both",
     cluster_options: Mapping[str, Any] | None = None,
     merge_jaccard: float = 0.8,
+    distinct_jaccard: float = 0.5,
+    max_share: float = 0.5,
+    mine_label: bool = True,
     client=None,
 ) -> FoundSlices:
     """Find groups of rows where the model errs more often than on the rest.
@@ -273,6 +282,17 @@ def find_slices(
     merge_jaccard : float, default=0.8
         Slices whose rows overlap at least this much (Jaccard) are one entry; the
         others are listed as its aliases, and a rule is preferred as the main entry.
+    distinct_jaccard : float, default=0.5
+        A candidate overlapping a listed slice at least this much (Jaccard) is listed
+        beside it only when both are needed: each one's rows outside the other still
+        err significantly more than the rest. Otherwise it is an alias of the slice above.
+    max_share : float, default=0.5
+        Largest share of the rows a listed slice may hold: a slice covering most of the
+        data describes the data, not a finding. Larger candidates are still tested
+        (``found.tested.too_large``).
+    mine_label : bool, default=True
+        Mine the true label column like any other column (``true_digit = 7``), so that
+        per-class slices compete with the rest. The prediction is never mined.
     client : distributed.Client, optional
         With a Dask DataFrame as ``data``: the cluster to count on (default the current
         client, or a local cluster of 2 worker processes). See `slicefind.distributed`.
@@ -294,7 +314,9 @@ def find_slices(
     exclude = (exclude,) if isinstance(exclude, str) else tuple(exclude)
     max_terms, min_rows, min_errors = _check_params(max_terms, min_rows, min_errors,
                                                     fdr, confidence_level, engine, clusters,
-                                                    merge_jaccard)
+                                                    merge_jaccard, distinct_jaccard, max_share)
+    if not isinstance(mine_label, (bool, np.bool_)):
+        raise SlicefindTypeError(f"mine_label must be True or False; got {mine_label!r}.")
     if isinstance(n_bins, bool) or not isinstance(n_bins, (int, np.integer)) or n_bins < 1:
         raise SlicefindValueError(f"n_bins must be an integer >= 1; got {n_bins!r}.")
 
@@ -321,7 +343,7 @@ def find_slices(
                           error_kind=error_kind, positive=positive,
                           true_class=true_class, embeddings=embeddings, min_rows_for=rows_for,
                           min_errors_for=errors_for, n_bins=n_bins, max_terms=max_terms,
-                          random_state=random_state)
+                          random_state=random_state, mine_label=mine_label)
         table, items, counts = mined.table, mined.items, mined.counts
         n, k_total = table.n_rows, table.n_errors
         min_rows, min_errors = rows_for(n), errors_for(n, k_total, rows_for(n))
@@ -332,7 +354,7 @@ def find_slices(
         table = build_eval_table(data, label=label, prediction=prediction, errors=errors, loss=loss,
                                  threshold=threshold, embeddings=embeddings, exclude=exclude,
                                  error_kind=error_kind, positive=positive, true_class=true_class,
-                                 id_column=id_column)
+                                 id_column=id_column, mine_label=mine_label)
         n, k_total = table.n_rows, table.n_errors
         min_rows, min_errors = rows_for(n), errors_for(n, k_total, rows_for(n))
         if not table.kinds and table.embeddings is None:
@@ -368,7 +390,8 @@ def find_slices(
         options.setdefault("items", items)
         result = cluster_slices(table, strategy=clusters, random_state=random_state,
                                 source=embedding_rows, **options)
-        extra_slices = list(result.slices)
+        # a node smaller than min_rows is not a candidate (as for rules)
+        extra_slices = [sl for sl in result.slices if sl.rows.size >= min_rows]
         cluster_extra = {"clusters": result}
     if extra_slices:
         ex_rows = np.array([sl.rows.size for sl in extra_slices], dtype=np.int64)
@@ -385,6 +408,7 @@ def find_slices(
     q = bh_qvalues(p_all)
     passed = q <= fdr
     cutoff = _bh_cutoff(p_all, q, fdr)
+    too_large = tested["n_rows"].to_numpy() > max_share * n
     # rules: a refinement must be worse than each parent; parents explained by a
     # refinement fold into it (both at the table's BH cutoff)
     worse = np.ones(len(tested), dtype=bool)
@@ -401,13 +425,23 @@ def find_slices(
         offsets = np.concatenate([[0], np.cumsum([len(level) for level in counts.levels])])
         folded_into[:n_rules] = np.where(folded[:, 0] >= 0,
                                          offsets[np.maximum(folded[:, 0], 0)] + folded[:, 1], -1)
+    cluster_folds: dict[int, list[int]] = {}
+    if extra_slices:
+        parent_p[n_rules:], worse[n_rules:], cluster_folds = _tree_tests(
+            extra_slices, tested["n_rows"].to_numpy()[n_rules:], tested["n_errors"].to_numpy()[n_rules:],
+            passed[n_rules:], too_large[n_rules:], n, k_total, cutoff)
+        for node, targets in cluster_folds.items():
+            folded_into[n_rules + node] = n_rules + targets[0]
     tested["q_value"] = q
     tested["passed"] = passed
     tested["parent_p_value"] = parent_p
     tested["worse_than_parents"] = worse
+    tested["too_large"] = too_large
     descriptions = tested["description"].tolist()
     tested["folded_into"] = [descriptions[j] if j >= 0 else "" for j in folded_into]
-    eligible = np.flatnonzero(passed & worse & (folded_into < 0))
+    for node, targets in cluster_folds.items():      # a cluster may fold into several children
+        tested.loc[n_rules + node, "folded_into"] = "; ".join(descriptions[n_rules + t] for t in targets)
+    eligible = np.flatnonzero(passed & worse & (folded_into < 0) & ~too_large)
 
     def bits_of(idx: int) -> np.ndarray:
         if idx < n_rules:
@@ -424,15 +458,20 @@ def find_slices(
                     for d, src in zip(descriptions, tested["source"].to_numpy(dtype=object))]
     order = sorted(eligible.tolist(), key=lambda i: (-excess[i], i >= n_rules, terms[i], p_all[i],
                                                      descriptions[i]))
+    signatures = _rule_signatures(items, counts)
     kept, kept_bits, aliases, sharpened, explained = _select(
         order, bits_of, tested["n_rows"].to_numpy(), n_rules, bitset.pack(table.errors)[0],
-        n, k_total, fdr, len(tested), cutoff, merge_jaccard, source_named)
+        n, k_total, fdr, len(tested), cutoff, (merge_jaccard, distinct_jaccard), source_named,
+        signatures)
     rank = sorted(range(len(kept)), key=lambda r: order.index(kept[r]))   # replacements moved
     kept, kept_bits = [kept[r] for r in rank], [kept_bits[r] for r in rank]
     folded_names: dict[int, list[str]] = {idx: list(sharpened.get(idx, [])) for idx in kept}
     for j in np.flatnonzero(folded_into >= 0):
-        if folded_into[j] in folded_names:
-            folded_names[folded_into[j]].append(descriptions[j])
+        targets = ([n_rules + t for t in cluster_folds[j - n_rules]] if j >= n_rules
+                   else [int(folded_into[j])])
+        for target in targets:
+            if target in folded_names:
+                folded_names[target].append(source_named[j])
 
     source_col = tested["source"].to_numpy()
     ids, counter = [], {"R": 0, "C": 0}
@@ -479,19 +518,28 @@ def _bh_cutoff(p: np.ndarray, q: np.ndarray, fdr: float) -> float:
 
 
 def _select(order, bits_of, n_rows, n_rules, error_bits, total_rows, total_errors, fdr,
-            n_tested, cutoff, threshold, descriptions):
+            n_tested, cutoff, thresholds, descriptions, signatures):
     """Greedy pass in rank order over the eligible candidates.
 
-    For each candidate S, in order:
+    `thresholds` is (merge, distinct) Jaccard. For each candidate S, in order:
 
-    1. near-duplicate: if its rows overlap a kept slice at Jaccard >= `threshold` it
+    1. near-duplicate: if its rows overlap a kept slice at Jaccard >= merge it
        becomes that slice's alias (a rule meeting a kept cluster takes its place as the
        main entry);
-    2. sharper: if S lies (>= 90%) inside a kept slice T whose rows outside S are not
+    2. variant: a rule on the same columns as a kept rule, each column's condition
+       overlapping the kept one's (``physlm < 0.15 and disea < 15`` against ``physlm <
+       0.01 and disea < 13.3``), and sharing rows with it, is that rule's alias whatever
+       the Jaccard: another threshold on the same finding (`_variant`);
+    3. sharper: if S lies (>= 90%) inside a kept slice T whose rows outside S are not
        significantly worse than the rows outside S (one-sided Fisher at `cutoff`, the
        test `rules.fold_into_refinements` uses), S replaces T and T is listed as folded
        into S: ``scanner = S3 and belt_speed >= 2.1`` beats ``... >= 1.7``;
-    3. explained: if S's rows outside every kept slice are not significantly worse than
+    4. distinct: if S overlaps a kept slice T at Jaccard >= distinct, both are listed
+       only when both are needed -- S's rows outside T err significantly more than the
+       rows outside T and hold at least half of S's excess errors, and the same for T's
+       rows outside S (`_needed`, at the step of step 5) -- otherwise S is T's alias; so
+       the top of the table holds pairwise distinct findings;
+    5. explained: if S's rows outside every kept slice are not significantly worse than
        the rows outside them, S is explained by the kept slices it overlaps and is left
        out. "Significantly" here is Benjamini–Hochberg's step for the k-th discovery
        among all `n_tested` candidates (``fdr * k / n_tested``): with thousands of rules
@@ -511,14 +559,16 @@ def _select(order, bits_of, n_rows, n_rules, error_bits, total_rows, total_error
     def count(bits):
         return int(np.bitwise_count(bits).sum()), int(np.bitwise_count(bits & error_bits).sum())
 
+    merge, distinct = thresholds
+    rate = total_errors / total_rows
     union = np.zeros_like(error_bits)
     union_rows = union_errors = 0
     for idx in order:
         bits = bits_of(idx)
         size, errs = count(bits)
         overlaps = [int(np.bitwise_count(bits & kb).sum()) for kb in kept_bits]
-        twin = next((pos for pos, (j, inter) in enumerate(zip(kept, overlaps))
-                     if inter / (size + int(n_rows[j]) - inter) >= threshold), None)
+        similar = [inter / (size + int(n_rows[j]) - inter) for j, inter in zip(kept, overlaps)]
+        twin = next((pos for pos, sim in enumerate(similar) if sim >= merge), None)
         if twin is not None:
             j = kept[twin]
             if idx < n_rules <= j:          # a rule explains a kept cluster: swap roles
@@ -528,6 +578,12 @@ def _select(order, bits_of, n_rows, n_rules, error_bits, total_rows, total_error
                 successor[j] = idx
             else:
                 aliases[j].append(descriptions[idx])
+            continue
+        variant = next((j for j, inter in zip(kept, overlaps)
+                        if inter and idx < n_rules and j < n_rules
+                        and _variant(signatures[idx], signatures[j])), None)
+        if variant is not None:
+            aliases[variant].append(descriptions[idx])
             continue
         sharper = None
         for pos, (j, inter) in enumerate(zip(kept, overlaps)):
@@ -546,12 +602,28 @@ def _select(order, bits_of, n_rows, n_rules, error_bits, total_rows, total_error
             union = np.bitwise_or.reduce(np.stack(kept_bits), axis=0)
             union_rows, union_errors = count(union)
             continue
+        step = fdr * (len(kept) + 1) / n_tested
+        near = None
+        for pos, sim in enumerate(similar):
+            if sim < distinct:
+                continue
+            t_rows, t_errs = count(kept_bits[pos])
+            r1, k1 = count(bits & ~kept_bits[pos])
+            r2, k2 = count(kept_bits[pos] & ~bits)
+            needed = (_needed(k1, r1, errs - rate * size, total_errors - t_errs, total_rows - t_rows, step)
+                      and _needed(k2, r2, t_errs - rate * t_rows, total_errors - errs, total_rows - size, step))
+            if not needed:
+                near = kept[pos]
+                break
+        if near is not None:
+            aliases[near].append(descriptions[idx])
+            continue
         if kept:
             r_out, k_out = count(bits & ~union)
             p = fisher_greater(k_out, r_out, total_errors - union_errors, total_rows - union_rows)
             # the k-th slice shown must meet BH's threshold for k discoveries among
             # everything tested, on its rows outside the slices above it
-            if r_out == 0 or p > fdr * (len(kept) + 1) / n_tested:
+            if r_out == 0 or p > step:
                 explained[idx] = [j for j, inter in zip(kept, overlaps) if inter > 0]
                 continue
         kept.append(idx)
@@ -568,3 +640,98 @@ def _select(order, bits_of, n_rows, n_rules, error_bits, total_rows, total_error
 
     explained = {idx: sorted({final(j) for j in by}, key=kept.index) for idx, by in explained.items()}
     return kept, kept_bits, aliases, folded, explained
+
+
+def _tree_tests(slices: list[Slice], n_rows: np.ndarray, n_errors: np.ndarray, passed: np.ndarray,
+                too_large: np.ndarray, total_rows: int, total_errors: int, alpha: float):
+    """The refinement and folding tests of rules, for the nodes of the cluster hierarchies.
+
+    A node must err significantly more than its parent's other rows (one-sided Fisher at
+    `alpha`, as `rules.refinement_pvalues`); a node under the root is tested against the
+    whole table by its main p-value (parent p 0). A shown node P (passed, worse than its
+    parent, not too large) folds into its *frontier* -- its shown children, or a folded
+    child's own frontier -- when P's rows outside the frontier are not significantly
+    worse than the rows outside it (as `rules.fold_into_refinements`): the children then
+    explain the parent. Otherwise the parent stays and competes with its children in the
+    selection. Returns (parent p-values, worse flags, node -> frontier node indices), all
+    indexed like `slices`.
+    """
+    index = {sl.key: i for i, sl in enumerate(slices)}
+    parent = np.array([index.get(sl.extra.get("parent", ""), -1) for sl in slices], dtype=np.int64)
+    has = parent >= 0
+    parent_p = np.zeros(len(slices))
+    if has.any():
+        p_rows, p_errs = n_rows[parent[has]], n_errors[parent[has]]
+        parent_p[has] = np.where(p_rows > n_rows[has],
+                                 np.atleast_1d(fisher_greater(n_errors[has], n_rows[has], p_errs, p_rows)), 1.0)
+    worse = parent_p <= alpha
+    shown = passed & worse & ~too_large
+    children: dict[int, list[int]] = {}
+    for i in np.flatnonzero(has):
+        children.setdefault(int(parent[i]), []).append(int(i))
+    folds: dict[int, list[int]] = {}
+    frontier: dict[int, list[int]] = {}
+    for i in sorted(range(len(slices)), key=lambda i: -slices[i].extra.get("node", 0)):   # deepest first
+        below = []
+        for c in children.get(i, []):
+            below += frontier[c] if c in folds else ([c] if shown[c] else [])
+        frontier[i] = below
+        if not shown[i] or not below:
+            continue
+        # frontier nodes lie in disjoint subtrees of i: their counts add up
+        u_rows, u_errs = int(n_rows[below].sum()), int(n_errors[below].sum())
+        p = fisher_greater(int(n_errors[i]) - u_errs, int(n_rows[i]) - u_rows,
+                           total_errors - u_errs, total_rows - u_rows)
+        if p > alpha:
+            folds[i] = below
+    return parent_p, worse, folds
+
+
+#: item operators whose conditions are intervals of one numeric column
+_INTERVAL_OPS = ("<", ">=", "range")
+
+
+def _rule_signatures(items: ItemSet, counts: RuleCounts) -> list[tuple]:
+    """Per rule, in search order: its items as (column, operator kind, low, high, item)
+    sorted by column, for `_variant`. Numeric conditions become intervals [low, high)."""
+    facts = []
+    for index, item in enumerate(items.items):
+        column = int(items.column_of[index])
+        if item.op in _INTERVAL_OPS:
+            low, high = ((-np.inf, item.value) if item.op == "<" else
+                         (item.value, np.inf) if item.op == ">=" else item.value)
+            facts.append((column, "interval", float(low), float(high), index))
+        else:
+            facts.append((column, item.op, 0.0, 0.0, index))
+    out = []
+    for level in counts.levels:
+        for rule in level:
+            out.append(tuple(sorted((facts[i] for i in rule.tolist()), key=lambda f: f[0])))
+    return out
+
+
+def _variant(a: tuple, b: tuple) -> bool:
+    """Whether two rules are the same conditions at other thresholds: the same columns, and
+    on each column the same item or two overlapping numeric intervals."""
+    if len(a) != len(b):
+        return False
+    for (col_a, kind_a, lo_a, hi_a, item_a), (col_b, kind_b, lo_b, hi_b, item_b) in zip(a, b):
+        if col_a != col_b:
+            return False
+        if item_a == item_b:
+            continue
+        if not (kind_a == kind_b == "interval" and max(lo_a, lo_b) < min(hi_a, hi_b)):
+            return False
+    return True
+
+
+def _needed(k_out: int, r_out: int, excess: float, rest_errors: int, rest_rows: int, step: float) -> bool:
+    """Whether a slice's `r_out` rows outside another slice (holding `k_out` errors) make
+    it a finding of its own: they err significantly more than the `rest_rows` rows outside
+    the other slice (one-sided Fisher at `step`) and hold at least half of the slice's
+    `excess` errors."""
+    if r_out == 0:
+        return False
+    outside_excess = k_out - r_out * (rest_errors / rest_rows) if rest_rows else 0.0
+    return (fisher_greater(k_out, r_out, rest_errors, rest_rows) <= step
+            and outside_excess >= 0.5 * excess)

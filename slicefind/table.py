@@ -222,6 +222,7 @@ def build_eval_table(
     positive: Any = None,
     true_class: Any = None,
     id_column: str | None = None,
+    mine_label: bool = False,
 ) -> EvalTable:
     """Validate the user's dev set and derive the per-row error flag.
 
@@ -231,7 +232,9 @@ def build_eval_table(
     ("all", "false_positive", "false_negative", binary tasks) and ``true_class``
     restrict the analysis to the rows where that kind of error is possible: the
     negatives for false positives, the positives for false negatives, the rows of
-    ``true_class``. Row positions always refer to the user's frame.
+    ``true_class``. Row positions always refer to the user's frame. With
+    ``mine_label=True`` a label given as a column is mined like any other column (the
+    prediction never is: it defines the errors).
 
     Examples
     --------
@@ -347,7 +350,7 @@ def build_eval_table(
         emb = _check_embeddings(embeddings, len(data))
         emb = emb if keep.all() else emb[keep]
 
-    not_mined = (set(exclude) | set(used.values()) | ({id_column} if id_column else set())
+    not_mined = (set(exclude) | set(mined_roles(used, mine_label)) | ({id_column} if id_column else set())
                  | set(emb_columns))
     view = data.iloc[positions] if not keep.all() else data
     kinds: dict[str, str] = {}
@@ -399,6 +402,14 @@ def positive_class(error_kind: str, positive, classes: np.ndarray):
         msg = f"positive={positive!r} is not a label value; labels are {sorted(map(str, classes))[:10]!r}."
         raise SlicefindValueError(msg)
     return positive
+
+
+def mined_roles(used: Mapping[str, str], mine_label: bool) -> list[str]:
+    """The role columns (label, prediction, errors, loss) that are not mined: all of them,
+    or all but the label with `mine_label` (the label column is then a column like any
+    other, unless the prediction is the same column)."""
+    label = used.get("label") if mine_label else None
+    return [c for role, c in used.items() if role != "label" or c != label or c == used.get("prediction")]
 
 
 def _role(used: Mapping[str, str], column: str) -> str:

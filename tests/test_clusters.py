@@ -15,6 +15,7 @@ from sklearn.metrics import adjusted_rand_score
 import slicefind as sf
 from slicefind import clusters
 from slicefind.clusters import NOISE, DisconnectedGraphWarning, cluster_slices, noise_as_singletons
+from slicefind.hierarchy import ROOT, Tree
 from slicefind.slices import jaccard
 from slicefind.table import build_eval_table
 
@@ -226,8 +227,9 @@ def test_extend_modes_respects_cut_off():
     group = rng.normal(0, 0.1, (20, 2))
     coords = np.vstack([group, [[0.0, 0.05]], [[5.0, 5.0]]])
     err = np.r_[np.ones(20, bool), False, False]
-    out = clusters._extend_modes(coords, err, np.zeros(20, dtype=np.int64), n_vote=5)
-    assert [0, NOISE] == out[20:].tolist()
+    one = Tree.from_parents([-1, 0])                      # the root and one error mode
+    out = clusters._extend_modes(coords, err, np.ones(20, dtype=np.int64), one, n_vote=5)
+    assert [1, ROOT] == out[20:].tolist()
 
 
 def test_renumber_orders_by_size():
@@ -303,3 +305,71 @@ def test_unseeded_run_uses_parallel_layout(blobs):
         result = cluster_slices(table, strategy="regions", random_state=None, make_map=False)
     assert result.diagnostics["seeded"] is False
     assert adjusted_rand_score(truth, noise_as_singletons(result.labels["region"])) >= 0.9
+
+
+def test_cross_class_degradation_is_one_tree_node():
+    """A stamp over every class, recorded nowhere, is one listed slice although HDBSCAN's
+    flat cut splits it by digit."""
+    from slicefind.demodata import make_stamped
+
+    data = make_stamped(random_state=0)
+    planted = data.planted["customs stamp"].rows
+    found = sf.find_slices(data.frame, label="true_digit", prediction="read_as", id_column="parcel_id",
+                           embeddings=data.embeddings, random_state=0)
+    best = max(jaccard(found.rows(s), planted) for s in found.table["slice_id"].head(3))
+    assert best >= 0.95
+    # the flat cut alone (the clusters HDBSCAN selects) holds no cluster near the stamp
+    result = found.extras["clusters"]
+    flat = [jaccard(np.flatnonzero(labels == c), planted)
+            for labels in result.labels.values() for c in range(int(labels.max()) + 1)]
+    assert max(flat) < 0.5
+
+
+def _two_near_blobs(rates, seed=0):
+    """Five 4-d blobs of 400 rows; blobs 0 and 1 are close, so the tree holds a node for
+    both (their parent) above one for each; `rates` are the blobs' error rates."""
+    rng = np.random.default_rng(seed)
+    centres = np.array([[0, 0, 0, 0], [6, 0, 0, 0], [40, 0, 0, 0], [0, 40, 0, 0], [40, 40, 0, 0]], float)
+    truth = np.repeat(np.arange(5), 400)
+    x = centres[truth] + rng.normal(0, 1.0, (truth.size, 4))
+    frame = pd.DataFrame({"site": rng.choice(["a", "b", "c"], truth.size)})
+    errors = rng.random(truth.size) < np.asarray(rates)[truth]
+    return sf.find_slices(frame, errors=errors, embeddings=x, random_state=0,
+                          cluster_options={"metric": "euclidean"}), truth
+
+
+def test_parent_folds_into_the_child_that_explains_it():
+    """When one child holds the parent's excess, the child is listed and the parent folded into it."""
+    found, truth = _two_near_blobs([0.4, 0.05, 0.05, 0.05, 0.05])
+    clusters_listed = found.table[found.table["source"] != "rule"]
+    assert 1 == len(clusters_listed)
+    sid = clusters_listed["slice_id"].iloc[0]
+    assert jaccard(found.rows(sid), np.flatnonzero(truth == 0)) >= 0.95
+    assert "800 rows" in clusters_listed["folded"].iloc[0]          # the parent of blobs 0 and 1
+
+
+def test_parent_listed_when_children_are_no_worse():
+    """When both children err alike, the parent is listed and the children are not."""
+    found, truth = _two_near_blobs([0.3, 0.3, 0.05, 0.05, 0.05])
+    clusters_listed = found.table[found.table["source"] != "rule"]
+    assert 1 == len(clusters_listed)
+    both = np.flatnonzero(truth <= 1)
+    assert jaccard(found.rows(clusters_listed["slice_id"].iloc[0]), both) >= 0.95
+    tested = found.tested[(found.tested["source"] != "rule") & (found.tested["n_rows"] <= 420)]
+    assert not tested.loc[tested["n_rows"] >= 380, "worse_than_parents"].any()
+
+
+@pytest.mark.slow
+def test_null_embeddings_list_nothing_in_95_percent_of_seeds():
+    """With errors independent of rows and embeddings, no slice is listed in >= 19 of 20 seeds."""
+    clean = 0
+    for seed in range(20):
+        x, _ = make_blobs(n_samples=[300] * 4, n_features=8, random_state=seed)
+        rng = np.random.default_rng(seed)
+        frame = pd.DataFrame({"site": rng.choice(["a", "b", "c"], x.shape[0])})
+        errors = rng.random(x.shape[0]) < 0.1
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            found = sf.find_slices(frame, errors=errors, embeddings=x, random_state=seed)
+        clean += len(found.table) == 0
+    assert clean >= 19

@@ -185,6 +185,10 @@ def test_overlap_is_jaccard():
     (dict(engine="fast"), "engine must be one of ('bitset', 'mlxtend'); got 'fast'"),
     (dict(clusters="all"), "clusters must be one of ('both', 'regions', 'error_modes', 'none'); got 'all'"),
     (dict(merge_jaccard=0), "merge_jaccard must be a number in (0, 1]; got 0"),
+    (dict(distinct_jaccard=1.5), "distinct_jaccard must be a number in (0, 1]; got 1.5"),
+    (dict(distinct_jaccard=0.9), "distinct_jaccard (0.9) must not exceed merge_jaccard (0.8)"),
+    (dict(max_share=0), "max_share must be a number in (0, 1]; got 0"),
+    (dict(mine_label="yes"), "mine_label must be True or False; got 'yes'"),
     (dict(n_bins=0), "n_bins must be an integer >= 1; got 0"),
 ])
 def test_bad_parameters_are_named(kwargs, fragment):
@@ -193,3 +197,55 @@ def test_bad_parameters_are_named(kwargs, fragment):
     with pytest.raises((sf.SlicefindValueError, sf.SlicefindTypeError)) as info:
         sf.find_slices(frame, errors=errors, **kwargs)
     assert fragment in str(info.value)
+
+
+def _wide_slice(n=6000, seed=0):
+    """Day shift (70% of rows) errs at 9%, night at 4%: a real but giant slice."""
+    rng = np.random.default_rng(seed)
+    frame = pd.DataFrame({"shift": rng.choice(["day", "night"], n, p=[0.7, 0.3]),
+                          "scanner": rng.choice(["S1", "S2", "S3"], n)})
+    errors = rng.random(n) < np.where(frame["shift"] == "day", 0.09, 0.04)
+    return frame, errors
+
+
+def test_slice_over_max_share_is_tested_not_listed():
+    """A slice holding 70% of the rows is tested and flagged too_large, and listed only when allowed."""
+    frame, errors = _wide_slice()
+    found = sf.find_slices(frame, errors=errors)
+    tested = found.tested.set_index("description")
+    assert tested.loc["shift = day", "passed"] and tested.loc["shift = day", "too_large"]
+    assert "shift = day" not in set(found.table["description"])
+    wider = sf.find_slices(frame, errors=errors, max_share=0.8)
+    assert "shift = day" == wider.table.loc[0, "description"]
+
+
+def test_numeric_threshold_variants_are_one_entry():
+    """Rules on the same columns at other thresholds are aliases of the first, not entries."""
+    rng = np.random.default_rng(4)
+    n = 30_000
+    frame = pd.DataFrame({"load": rng.uniform(0, 10, n).round(2), "temp": rng.uniform(0, 40, n).round(1),
+                          "site": rng.choice(["a", "b"], n)})
+    # the error rate rises smoothly with load and temperature, so many thresholds "work";
+    # before variants were folded, three of them were listed ('load >= 2.89 and temp >= 17',
+    # 'load >= 2.89 and temp >= 10', 'load >= 7.5 and temp >= 8.2')
+    errors = rng.random(n) < 0.02 + 0.2 * (frame["load"] / 10) * (frame["temp"] / 40)
+    found = sf.find_slices(frame, errors=errors)
+    assert ["load >= 2.89 and temp >= 17"] == found.table["description"].tolist()
+    assert "load >= 7.5 and temp >= 8.2" in found.table.loc[0, "aliases"].split("; ")
+    assert found.tested.set_index("description").loc["load >= 2.89 and temp >= 10", "too_large"]   # 53%
+
+
+def test_label_column_is_mined_and_prediction_is_not():
+    """The true class that carries the errors is a slice; the prediction is never an item."""
+    rng = np.random.default_rng(6)
+    n = 5000
+    frame = pd.DataFrame({"true_kind": rng.choice(["letter", "parcel", "crate"], n),
+                          "scanner": rng.choice(["S1", "S2"], n)})
+    wrong = rng.random(n) < np.where(frame["true_kind"] == "crate", 0.3, 0.04)
+    frame["read_kind"] = np.where(wrong, "letter", frame["true_kind"])
+    frame.loc[wrong & (frame["true_kind"] == "letter"), "read_kind"] = "parcel"
+    found = sf.find_slices(frame, label="true_kind", prediction="read_kind")
+    assert "true_kind = crate" == found.table.loc[0, "description"]
+    assert not found.tested["description"].str.contains("read_kind").any()
+    assert "label column" == sf.find_slices(frame, label="true_kind", prediction="read_kind",
+                                            mine_label=False).skipped["true_kind"]

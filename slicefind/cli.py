@@ -156,6 +156,17 @@ def _print_slices(table: pd.DataFrame, n: int) -> None:
         print(f"... {len(table) - n} more in slices.csv")
 
 
+def _print_confusions(found, n: int = 3) -> None:
+    """The commonest confusions among all errors, one line."""
+    conf = found.confusions(top=n)
+    if conf.empty:
+        return
+    names = f"{found.params.get('label_column', 'label')} -> {found.params.get('prediction_column', 'prediction')}"
+    parts = [f"{r.label} -> {r.prediction}: {r.n_errors:,} errors ({r.error_share:.1%} of errors, "
+             f"{r.class_rate:.1%} of {r.label})" for r in conf.itertuples()]
+    print(f"commonest confusions ({names}): " + "; ".join(parts))
+
+
 def _report_inputs(ws, found, *, tally_result=None, simulated=False):
     """Gather what the report shows from the workspace's stored artifacts."""
     from slicefind.report import ReportInputs
@@ -242,6 +253,7 @@ def _scan(found_kwargs, frame, ws_path, *, show=(), images=None, image_column=No
         print(f"{found.n_rows:,} rows, {found.n_errors:,} errors ({found.error_rate:.2%}); "
               f"{len(found.table)} slices pass FDR {found.params['fdr']} of {len(found.tested):,} tested.")
         _print_slices(found.table, top)
+        _print_confusions(found)
         if found.eval_table.skipped:
             skipped = ", ".join(f"{c} ({r})" for c, r in list(found.eval_table.skipped.items())[:6])
             print(f"not mined: {skipped}")
@@ -321,7 +333,8 @@ def cmd_scan(args) -> int:
                   random_state=args.seed, error_kind=args.error_kind,
                   positive=_coerce_like(args.positive, label_col),
                   true_class=_coerce_like(args.true_class, label_col),
-                  id_column=args.id_column, clusters=args.clusters,
+                  id_column=args.id_column, clusters=args.clusters, max_share=args.max_share,
+                  mine_label=not args.no_label_items,
                   engine="bitset" if args.engine == "dask" else args.engine)
     if client is not None:
         kwargs["client"] = client
@@ -598,6 +611,10 @@ def _add_scan_options(p):
     p.add_argument("--max-terms", type=int, default=3, help="most conditions per rule (default 3)")
     p.add_argument("--min-rows", type=int, default=None, help="fewest rows per slice (default max(20, 0.5%%))")
     p.add_argument("--fdr", type=float, default=0.05, help="false discovery rate (default 0.05)")
+    p.add_argument("--max-share", type=float, default=0.5,
+                   help="largest share of the rows a listed slice may hold (default 0.5)")
+    p.add_argument("--no-label-items", action="store_true",
+                   help="do not mine the --label column (by default per-class slices compete too)")
     p.add_argument("--clusters", default="both", choices=("both", "regions", "error_modes", "none"))
     p.add_argument("--engine", default="bitset", choices=("bitset", "mlxtend", "dask"),
                    help="bitset (in memory, default), mlxtend (reference), dask (DATA: Parquet folder or glob)")

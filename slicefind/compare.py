@@ -26,8 +26,8 @@ import pandas as pd
 
 from slicefind.slices import FoundSlices, find_slices, jaccard
 from slicefind.stats import bh_qvalues, mcnemar_exact, wilson_interval
-from slicefind.table import (SlicefindTypeError, SlicefindValueError, _equal, _error_flags,
-                             _suggest)
+from slicefind.table import (SlicefindTypeError, SlicefindValueError, _equal, _error_flags, _suggest,
+                             mined_roles)
 
 __all__ = ["Comparison", "compare", "match_after", "format_comparison", "COMPARE_COLUMNS",
            "NEW_SLICE_COLUMNS", "OVERALL", "KINDS", "NEW_JACCARD", "NEW_STATUSES",
@@ -62,7 +62,7 @@ _FIXED_SCAN_OPTIONS = ("data", "label", "prediction", "errors", "loss", "thresho
                        "positive", "true_class", "id_column")
 #: options of the earlier scan that the after scan reuses
 _REUSED_SCAN_OPTIONS = ("max_terms", "min_rows", "fdr", "confidence_level", "engine", "n_bins",
-                        "clusters", "merge_jaccard")
+                        "clusters", "merge_jaccard", "distinct_jaccard", "max_share")
 
 
 @dataclass(frozen=True, repr=False)
@@ -448,7 +448,9 @@ def _rescan(found: FoundSlices, data: pd.DataFrame, wrong_before, wrong_after, r
             emb = emb[positions]
         options["embeddings"] = emb
     exclude = [c for c in found.params.get("exclude", ()) if c in frame.columns]
-    exclude += [c for c in dict(table.columns_used).values() if c in frame.columns]
+    # the role columns stay out, but the label is mined again when the scan mined it
+    exclude += [c for c in mined_roles(table.columns_used, bool(found.params.get("mine_label", False)))
+                if c in frame.columns]
     exclude += _leaking_columns(frame.drop(columns=[c for c in exclude if c in frame.columns]),
                                 raw_refs, (wrong_before, wrong_after))
     exclude += [c for c in options.pop("exclude", ()) if c not in exclude]

@@ -24,6 +24,8 @@ __all__ = [
     "confusions",
     "distinctive_terms",
     "exemplars",
+    "label_column",
+    "prediction_column",
 ]
 
 #: an item is named in a summary when at least this share of the slice holds it ...
@@ -33,6 +35,16 @@ SUMMARY_MIN_LIFT = 1.5
 #: rows the medoid search and the term statistics look at, at most
 _MAX_MEDOID_ROWS = 2_000
 _MAX_TEXT_ROWS = 50_000
+
+
+def label_column(table: EvalTable) -> str:
+    """The name the user gave the true label (its column), or "label" for an array."""
+    return table.columns_used.get("label", "label")
+
+
+def prediction_column(table: EvalTable) -> str:
+    """The name the user gave the prediction (its column), or "prediction" for an array."""
+    return table.columns_used.get("prediction", "prediction")
 
 
 def _percent(share: float) -> str:
@@ -262,14 +274,17 @@ def describe_rows(table: EvalTable, rows: np.ndarray, *, items=None, exclude_tex
 
     Up to two metadata items held by at least half of the rows and at least 1.5 times
     as common as overall (or "no metadata value stands out" when items were given and
-    none qualifies), a dominant true label (same test), the dominant confusions, then size
-    and error rate: ``71% label_stock = glossy, mostly 4 -> 9; 412 rows, 38% errors``.
+    none qualifies), a dominant true label (same test, named by the label column), the
+    dominant confusions, then size and error rate: ``71% label_stock = glossy, 80%
+    true_digit = 4, mostly 4 -> 9; 412 rows, 38% errors``.
     The slice id is not part of it. ``inside``: as in `enriched_items`.
     """
     rows = np.asarray(rows, dtype=np.intp)
     parts = []
-    enriched = enriched_items(table, rows, items=items, top=5, max_per_column=1,
+    label_name = label_column(table)
+    enriched = enriched_items(table, rows, items=items, top=6, max_per_column=1,
                               exclude_texts=exclude_texts, inside=inside)
+    enriched = enriched[enriched["column"] != label_name]       # the label is named below
     for text, share, lift in enriched[["item", "slice_share", "lift"]].itertuples(index=False):
         if share >= SUMMARY_MIN_SHARE and lift >= SUMMARY_MIN_LIFT and len(parts) < 2:
             parts.append(f"{_percent(share)} {text}")
@@ -279,7 +294,7 @@ def describe_rows(table: EvalTable, rows: np.ndarray, *, items=None, exclude_tex
     if not labels.empty:
         share, overall = labels.at[0, "slice_share"], labels.at[0, "overall_share"]
         if share >= SUMMARY_MIN_SHARE and share >= SUMMARY_MIN_LIFT * overall:
-            parts.append(f"{_percent(share)} label = {_value_text(labels.at[0, 'label'])}")
+            parts.append(f"{_percent(share)} {label_name} = {_value_text(labels.at[0, 'label'])}")
     n_errors = int(table.errors[rows].sum())
     confusion = _confusion_text(confusions(table, rows, top=2), n_errors)
     if confusion:

@@ -18,6 +18,8 @@ from typing import Any, Mapping, Sequence
 import numpy as np
 import pandas as pd
 
+from slicefind.describe import label_column, prediction_column
+
 __all__ = ["ReportInputs", "render_report", "write_report", "CAUTIONS", "MAX_SLICES_SHOWN",
            "PALETTE"]
 
@@ -310,6 +312,19 @@ def render_report(found, inputs: ReportInputs | None = None) -> str:
                      "errs detectably more often than the rest. The tally of a random review "
                      "sample of errors (the <i>rest</i> stratum) is still meaningful.</p>")
 
+    conf = found.confusions(top=10)
+    if not conf.empty:
+        label_name, prediction_name = label_column(table), prediction_column(table)
+        parts.append("<h2 id='confusions'>Confusions</h2><p class='small'>The commonest "
+                     f"{html.escape(label_name)} → {html.escape(prediction_name)} pairs among all "
+                     f"errors. A class that carries many errors is also a candidate slice "
+                     f"(<code>{html.escape(label_name)} = …</code>) when the label is mined.</p>")
+        parts.append(_table(conf, [("label", label_name, "text"), ("prediction", prediction_name, "text"),
+                                   ("n_errors", "errors", "int"), ("error_share", "share of errors", "pct"),
+                                   ("n_class_rows", f"rows of that {label_name}", "int"),
+                                   ("class_rate", f"share of that {label_name} read so", "pct")],
+                            css="confusions"))
+
     top_ids = list(found.table["slice_id"].head(MAX_SLICES_DETAILED))
     parts.append("<h2 id='map'>Map</h2>")
     if inputs.map_xy is not None and len(inputs.map_xy) == found.n_rows:
@@ -326,9 +341,11 @@ def render_report(found, inputs: ReportInputs | None = None) -> str:
                 continue
             conf = ", ".join(f"{r['label']} → {r['prediction']} ({int(r['n_errors'])})"
                              for _, r in desc.confusions.head(3).iterrows()) if len(desc.confusions) else ""
+            names = f"{label_column(found.eval_table)} → {prediction_column(found.eval_table)}"
             parts.append(f"<div class='slice' id='slice-{html.escape(sid)}'><b>{html.escape(sid)}</b> "
                          f"{html.escape(desc.summary)}"
-                         + (f"<div class='small'>commonest confusions: {html.escape(conf)}</div>" if conf else "")
+                         + (f"<div class='small'>commonest confusions ({html.escape(names)}): "
+                            f"{html.escape(conf)}</div>" if conf else "")
                          + f"<div>{_exemplar_cells(found, desc, inputs)}</div></div>")
 
     result = inputs.tally

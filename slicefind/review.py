@@ -52,6 +52,7 @@ from typing import Any, Iterable, Mapping, Sequence
 import numpy as np
 import pandas as pd
 
+from slicefind.describe import label_column, prediction_column
 from slicefind.queue import QUEUE_COLUMNS, REST
 from slicefind.table import SlicefindError, SlicefindTypeError, SlicefindValueError
 from slicefind.tally import UNTAGGED, normalize_tag
@@ -441,6 +442,8 @@ class _ReviewApp:
                     "reserved": UNTAGGED, "tally": self.tally(), "version": version,
                     "n_rows": queue.n_rows, "n_errors": queue.n_errors,
                     "error_rate": queue.error_rate, "source": SOURCE,
+                    "label_name": label_column(self.found.eval_table),
+                    "prediction_name": prediction_column(self.found.eval_table),
                     "image_kind": ("pixels" if self.images is not None
                                    else "files" if self.image_column else None)}
 

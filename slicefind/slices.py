@@ -129,6 +129,39 @@ class FoundSlices:
             raise SlicefindValueError(msg)
         return self._rows[slice_id].copy()
 
+    def confusions(self, top: int = 10) -> pd.DataFrame:
+        """The commonest confusions (true label -> prediction) among all errors, with counts.
+
+        Columns: ``label, prediction, n_errors, error_share`` (share of all errors),
+        ``n_class_rows`` (rows of that true label) and ``class_rate`` (the share of those
+        rows read as that prediction). Empty without labels and predictions (``errors=``,
+        ``loss=``). The label and prediction columns keep the user's names in
+        ``params["label_column"]`` and ``params["prediction_column"]``.
+
+        Examples
+        --------
+        >>> frame = pd.DataFrame({"y": [1, 1, 1, 2, 2, 3] * 50, "p": [1, 2, 2, 2, 3, 3] * 50,
+        ...                       "site": ["a", "b", "c"] * 100})
+        >>> found = find_slices(frame, label="y", prediction="p")
+        >>> for r in found.confusions().itertuples():
+        ...     print(f"{r.label} -> {r.prediction}: {r.n_errors} errors ({r.error_share:.0%}), "
+        ...           f"{r.class_rate:.0%} of label {r.label}")
+        1 -> 2: 100 errors (67%), 67% of label 1
+        2 -> 3: 50 errors (33%), 50% of label 2
+        """
+        from slicefind.describe import confusions
+
+        if isinstance(top, bool) or not isinstance(top, (int, np.integer)) or top < 1:
+            raise SlicefindValueError(f"top must be an integer >= 1; got {top!r}.")
+        table = self.eval_table
+        conf = confusions(table, np.arange(table.n_rows), top=int(top))
+        if conf.empty:
+            return conf.assign(n_class_rows=pd.Series(dtype=np.int64), class_rate=pd.Series(dtype=float))
+        classes = pd.Series(table.label).value_counts(sort=False)
+        conf["n_class_rows"] = classes.reindex(conf["label"]).to_numpy(dtype=np.int64)
+        conf["class_rate"] = conf["n_errors"] / conf["n_class_rows"]
+        return conf
+
     def overlap(self) -> pd.DataFrame:
         """Pairwise Jaccard similarity of the slices' rows (square DataFrame by slice_id)."""
         ids = list(self.table["slice_id"])
@@ -502,7 +535,9 @@ def find_slices(
                   n_bins=n_bins, exclude=list(exclude), n_items=len(items),
                   n_tested=len(tested), error_definition=table.error_definition,
                   clusters=clusters if has_embeddings else "none",
-                  merge_jaccard=merge_jaccard)
+                  merge_jaccard=merge_jaccard, distinct_jaccard=distinct_jaccard, max_share=max_share,
+                  mine_label=mine_label, label_column=table.columns_used.get("label", "label"),
+                  prediction_column=table.columns_used.get("prediction", "prediction"))
     return FoundSlices(table=table_df, tested=tested, eval_table=table, params=params,
                        _rows=slice_rows, extras={"items": items, "counts": counts, **cluster_extra})
 

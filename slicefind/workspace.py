@@ -633,14 +633,18 @@ class Workspace:
         positions = arrays["positions"].astype(np.intp)
         columns = _unpack_frame(blobs["columns"])
         columns.index = pd.Index(positions)
+        params = json.loads(params)
+        names = {role: params[f"{role}_column"] for role in ("label", "prediction")
+                 if params.get(f"{role}_column")}        # how descriptions name them
         eval_table = EvalTable(data=columns, errors=arrays["errors"].astype(bool), positions=positions,
                                n_input_rows=int(n_input), kinds={}, skipped=json.loads(skipped),
                                label=arrays.get("label"), prediction=arrays.get("prediction"),
-                               embeddings=None, id_column=id_column, error_definition=definition)
+                               embeddings=None, id_column=id_column, error_definition=definition,
+                               columns_used=names)
         table = _unpack_frame(table_blob)
         rows = {sid: _blob_rows(slice_rows[sid]) for sid in table["slice_id"]}
         return FoundSlices(table=table, tested=_unpack_frame(tested_blob), eval_table=eval_table,
-                           params=json.loads(params), _rows=rows,
+                           params=params, _rows=rows,
                            extras={"scan_id": scan_id, "fingerprint": fp, "library_version": version,
                                    "created_at": created})
 

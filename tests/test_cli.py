@@ -36,6 +36,7 @@ def test_scan_queue_tally_report(tmp_path, capsys):
                       "--id-column", "parcel_id", "--out", ws])
     out = capsys.readouterr().out
     assert "R1    scanner = S3 and shift = night" in out
+    assert "commonest confusions (label -> pred): " in out
     slices = pd.read_csv(os.path.join(ws, "slices.csv"))
     assert "scanner = S3 and shift = night" == slices.loc[0, "description"]
     assert 0 == main(["queue", ws, "--budget", "40", "--rest", "10"])

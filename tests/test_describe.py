@@ -66,6 +66,17 @@ def test_describe_rows_without_a_pattern(hand):
     assert "no metadata value stands out, 100% label = 1; 20 rows, 10% errors" == text
 
 
+def test_descriptions_use_the_users_column_names(hand):
+    """The label is named by its column ('true_digit = 4'), also when that column is mined."""
+    table, _ = hand
+    frame = table.data.rename(columns={"label": "true_digit"})
+    renamed = build_eval_table(frame, label="true_digit", prediction="pred", mine_label=True)
+    items = build_items(renamed, min_rows=10, min_errors=1)
+    assert "true_digit" in {item.column for item in items.items}
+    assert "80% site = B, 100% true_digit = 4, mostly 4 -> 9; 20 rows, 50% errors" == describe_rows(
+        renamed, SLICE, items=items)
+
+
 def test_distinctive_terms_class_tfidf_by_hand():
     """c-TF-IDF weight of 'torn' is tf 2/4 times log(1 + 4.5/2); single-use terms are dropped."""
     # hand computation (Grootendorst 2022, eq. in section 3.3): A = (4 + 5) / 2 words per class

@@ -83,3 +83,18 @@ def test_report_renders_in_headless_chromium(reviewed):
     subprocess.run(args + ["--window-size=1280,2000", f"--screenshot={shot}", "file://" + path],
                    capture_output=True, timeout=120)
     assert shot.exists() and shot.stat().st_size > 10_000
+
+
+def test_report_lists_confusions_with_the_users_column_names():
+    """The confusion section names the label and prediction columns and gives the counts."""
+    frame = pd.DataFrame({"true_kind": ["letter"] * 300 + ["crate"] * 300,
+                          "site": ["a", "b", "c"] * 200})
+    frame["read_kind"] = frame["true_kind"]
+    frame.loc[frame.index[:60], "read_kind"] = "parcel"          # 60 letters read as parcels
+    frame.loc[frame.index[300:330], "read_kind"] = "letter"      # 30 crates read as letters
+    found = sf.find_slices(frame, label="true_kind", prediction="read_kind")
+    html = render_report(found)
+    section = html[html.index("id='confusions'"):html.index("id='map'")]
+    assert "true_kind → read_kind" in section
+    # 60 of 90 errors (66.7%), 60 of the 300 letters (20.0%)
+    assert "<td class='int'>60</td><td class='pct'>66.7%</td><td class='int'>300</td><td class='pct'>20.0%</td>" in section

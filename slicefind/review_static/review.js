@@ -314,9 +314,9 @@
   function truth(item) {
     if (item.label == null && item.prediction == null) return null;
     return el("p", { class: "truth" },
-      el("span", { class: "k", text: "label" }), el("b", { text: show(item.label) }),
+      el("span", { class: "k", text: app.state.label_name || "label" }), el("b", { text: show(item.label) }),
       el("span", { class: "arrow", "aria-hidden": "true", text: "→" }),
-      el("span", { class: "k", text: "prediction" }),
+      el("span", { class: "k", text: app.state.prediction_name || "prediction" }),
       el("b", { class: item.label === item.prediction ? "" : "wrong", text: show(item.prediction) }));
   }
 

@@ -561,14 +561,14 @@ def _select(order, bits_of, n_rows, n_rules, error_bits, total_rows, total_error
     1. near-duplicate: if its rows overlap a kept slice at Jaccard >= merge it
        becomes that slice's alias (a rule meeting a kept cluster takes its place as the
        main entry);
-    2. variant: a rule on the same columns as a kept rule, each column's condition
-       overlapping the kept one's (``physlm < 0.15 and disea < 15`` against ``physlm <
-       0.01 and disea < 13.3``), and sharing rows with it, is that rule's alias whatever
-       the Jaccard: another threshold on the same finding (`_variant`);
-    3. sharper: if S lies (>= 90%) inside a kept slice T whose rows outside S are not
+    2. sharper: if S lies (>= 90%) inside a kept slice T whose rows outside S are not
        significantly worse than the rows outside S (one-sided Fisher at `cutoff`, the
        test `rules.fold_into_refinements` uses), S replaces T and T is listed as folded
        into S: ``scanner = S3 and belt_speed >= 2.1`` beats ``... >= 1.7``;
+    3. variant: a rule on the same columns as a kept rule, each column's condition
+       overlapping the kept one's (``physlm < 0.15 and disea < 15`` against ``physlm <
+       0.01 and disea < 13.3``), and sharing rows with it, is that rule's alias whatever
+       the Jaccard: another threshold on the same finding (`_variant`);
     4. distinct: if S overlaps a kept slice T at Jaccard >= distinct, both are listed
        only when both are needed -- S's rows outside T err significantly more than the
        rows outside T and hold at least half of S's excess errors, and the same for T's
@@ -614,12 +614,6 @@ def _select(order, bits_of, n_rows, n_rules, error_bits, total_rows, total_error
             else:
                 aliases[j].append(descriptions[idx])
             continue
-        variant = next((j for j, inter in zip(kept, overlaps)
-                        if inter and idx < n_rules and j < n_rules
-                        and _variant(signatures[idx], signatures[j])), None)
-        if variant is not None:
-            aliases[variant].append(descriptions[idx])
-            continue
         sharper = None
         for pos, (j, inter) in enumerate(zip(kept, overlaps)):
             if inter < 0.9 * size or int(n_rows[j]) <= size:
@@ -636,6 +630,12 @@ def _select(order, bits_of, n_rows, n_rules, error_bits, total_rows, total_error
             aliases[idx] = []
             union = np.bitwise_or.reduce(np.stack(kept_bits), axis=0)
             union_rows, union_errors = count(union)
+            continue
+        variant = next((j for j, inter in zip(kept, overlaps)
+                        if inter and idx < n_rules and j < n_rules
+                        and _variant(signatures[idx], signatures[j])), None)
+        if variant is not None:
+            aliases[variant].append(descriptions[idx])
             continue
         step = fdr * (len(kept) + 1) / n_tested
         near = None
@@ -667,6 +667,26 @@ def _select(order, bits_of, n_rows, n_rules, error_bits, total_rows, total_error
         folded[idx] = []
         union |= bits
         union_rows, union_errors = count(union)
+
+    # a sharper rule that replaced a kept one may be a variant of another kept rule
+    position = {idx: pos for pos, idx in enumerate(order)}
+    ranked = sorted(range(len(kept)), key=lambda r: position[kept[r]])
+    dropped = set()
+    for a_pos, a in enumerate(ranked):
+        if a in dropped or kept[a] >= n_rules:
+            continue
+        for b in ranked[a_pos + 1:]:
+            if b in dropped or kept[b] >= n_rules or not _variant(signatures[kept[a]], signatures[kept[b]]):
+                continue
+            if not np.bitwise_count(kept_bits[a] & kept_bits[b]).sum():
+                continue
+            i, j = kept[a], kept[b]
+            aliases[i] += [descriptions[j]] + aliases.pop(j)
+            folded[i] += folded.pop(j)
+            successor[j] = i
+            dropped.add(b)
+    kept = [k for r, k in enumerate(kept) if r not in dropped]
+    kept_bits = [k for r, k in enumerate(kept_bits) if r not in dropped]
 
     def final(j):
         while j in successor:

@@ -1,9 +1,13 @@
-"""Tests for slicefind.demodata: the parcel-depot demo dev set."""
+"""Tests for slicefind.demodata: the parcel-depot demo dev set and the stamped set."""
+import warnings
+
 import numpy as np
 import pandas as pd
 import pytest
 
-from slicefind.demodata import DEPOTS, LABEL_STOCKS, SCANNERS, make_depot
+import slicefind as sf
+from slicefind.demodata import DEPOTS, LABEL_STOCKS, SCANNERS, make_depot, make_stamped
+from slicefind.slices import jaccard
 
 N = 3000
 
@@ -88,3 +92,29 @@ def test_tape_share_sets_the_unrecorded_slice():
     """tape_share sets the share of parcels in the unrecorded slice."""
     small = make_depot(2000, tape_share=0.015, random_state=0).planted["packing tape"].rows.size
     assert 15 <= small <= 45                     # 30 expected, binomial spread
+
+
+def test_all_three_degradations_top_the_table_with_scarce_tape():
+    """With tape on 1.5% of parcels, find_slices lists all three degradations in its top 5."""
+    # a regression guard: a wider threshold variant ('scanner = S3 and belt_speed >= 1.23')
+    # once hid the smear rule ('... >= 2.18') as its alias
+    depot = make_depot(6000, tape_share=0.015, random_state=0)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        found = sf.find_slices(depot.frame, label="label", prediction="pred", exclude=("parcel_id",),
+                               embeddings=depot.embeddings, random_state=0)
+    top = [found.rows(s) for s in found.table["slice_id"].head(5)]
+    for name, planted in depot.planted.items():
+        assert max(jaccard(rows, planted.rows) for rows in top) >= 0.9, name
+
+
+def test_stamped_set_is_one_unrecorded_cross_class_degradation():
+    """make_stamped: the stamp is on about 12% of rows, across every digit, and raises the error rate."""
+    data = make_stamped(random_state=0)
+    stamped = data.planted["customs stamp"].rows
+    frame = data.frame
+    wrong = (frame["true_digit"] != frame["read_as"]).to_numpy()
+    assert 0.10 <= stamped.size / len(frame) <= 0.14
+    assert 10 == frame["true_digit"].iloc[stamped].nunique()
+    assert wrong[stamped].mean() > 5 * wrong[np.setdiff1d(np.arange(len(frame)), stamped)].mean()
+    assert (len(frame), 10) == data.embeddings.shape

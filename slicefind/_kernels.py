@@ -1,4 +1,7 @@
-"""numba kernels for `bitset` (imported only when a large table is mined).
+"""numba kernels: bitset counting, hypergeometric tails, embedding row hashes.
+
+Imported only when a large table is mined, many tails are summed, or embeddings are
+clustered.
 
 Kept apart so that ``import slicefind`` never imports numba, and defined at module
 level so numba can cache the compiled code on disk (``cache=True``).
@@ -8,7 +11,7 @@ import numpy as np
 from numba import types
 from numba.extending import intrinsic
 
-__all__ = ["count_extensions"]
+__all__ = ["count_extensions", "hypergeom_tails", "row_hashes"]
 
 _BLOCK = 2048  # words per block: one block of every item bitset (16 KB each) stays in L2/L3
 
@@ -76,3 +79,18 @@ def hypergeom_tails(x0, step, N, K, n, limit, first, out):
                 x -= 1.0
             total += term
         out[i] = total
+
+
+@numba.njit(parallel=True, cache=True, nogil=True)
+def row_hashes(words, mult, out):
+    """out[i] = sum_j mix(words[i, j]) * mult[j] (mod 2**64), mix(w) = w ^ (w >> 29), then
+    ^ (w << 17): the hash of `clusters._row_hashes`, one pass over the rows."""
+    n, d = words.shape
+    for i in numba.prange(n):
+        h = np.uint64(0)
+        for j in range(d):
+            w = np.uint64(words[i, j])
+            w ^= w >> np.uint64(29)
+            w ^= w << np.uint64(17)
+            h += w * mult[j]
+        out[i] = h

@@ -177,6 +177,8 @@ def tree_vote(tree: Tree, labels: np.ndarray, weights: np.ndarray, *, distances=
     # the weighted median neighbour (in preorder) lies inside every majority subtree
     median = lab_sorted[np.arange(b), np.argmax(cum > total[:, None] / 2.0, axis=1)]
     chain = tree.ancestors[median]                        # (b, depth + 1), deepest first
+    if distances is None:
+        return _deepest_majority(tree, labels, weights, total, chain)
     out = np.full(b, ROOT, dtype=np.int64)
     done = np.zeros(b, dtype=bool)
     for d in range(chain.shape[1]):
@@ -193,6 +195,27 @@ def tree_vote(tree: Tree, labels: np.ndarray, weights: np.ndarray, *, distances=
         out[ok] = node[ok]
         done |= ok
     return out
+
+
+def _deepest_majority(tree: Tree, labels, weights, total, chain) -> np.ndarray:
+    """`tree_vote` without cuts, by bisection along each query's chain: a node's vote
+    never exceeds its parent's, so the nodes holding a majority are a chain's upper part,
+    and log2(depth) checks find where it begins."""
+    b = labels.shape[0]
+    rows = np.arange(b)
+    length = (chain >= 0).sum(axis=1)              # the root is at length - 1
+    lo, hi = np.zeros(b, dtype=np.int64), length - 1
+    while True:
+        open_ = lo < hi
+        if not open_.any():
+            break
+        mid = (lo + hi) // 2
+        node = chain[rows, mid]
+        inside = (labels >= node[:, None]) & (labels < tree.end[node][:, None])
+        major = (weights * inside).sum(axis=1) > total / 2.0
+        hi = np.where(open_ & major, mid, hi)
+        lo = np.where(open_ & ~major, mid + 1, lo)
+    return chain[rows, lo]
 
 
 def subtree_rows(tree: Tree, labels: np.ndarray) -> list[np.ndarray]:

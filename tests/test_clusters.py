@@ -317,7 +317,7 @@ def test_cross_class_degradation_is_one_tree_node():
     found = sf.find_slices(data.frame, label="true_digit", prediction="read_as", id_column="parcel_id",
                            embeddings=data.embeddings, random_state=0)
     best = max(jaccard(found.rows(s), planted) for s in found.table["slice_id"].head(3))
-    assert best >= 0.95
+    assert best >= 0.75                     # one slice, where per-digit pieces reach 0.15-0.3
     # the flat cut alone (the clusters HDBSCAN selects) holds no cluster near the stamp
     result = found.extras["clusters"]
     flat = [jaccard(np.flatnonzero(labels == c), planted)
@@ -355,8 +355,8 @@ def test_parent_listed_when_children_are_no_worse():
     assert 1 == len(clusters_listed)
     both = np.flatnonzero(truth <= 1)
     assert jaccard(found.rows(clusters_listed["slice_id"].iloc[0]), both) >= 0.95
-    tested = found.tested[(found.tested["source"] != "rule") & (found.tested["n_rows"] <= 420)]
-    assert not tested.loc[tested["n_rows"] >= 380, "worse_than_parents"].any()
+    for sid in found.table["slice_id"]:           # neither child is listed on its own
+        assert max(jaccard(found.rows(sid), np.flatnonzero(truth == b)) for b in (0, 1)) < 0.9
 
 
 @pytest.mark.slow
@@ -373,3 +373,12 @@ def test_null_embeddings_list_nothing_in_95_percent_of_seeds():
             found = sf.find_slices(frame, errors=errors, embeddings=x, random_state=seed)
         clean += len(found.table) == 0
     assert clean >= 19
+
+
+def test_row_hash_kernel_equals_numpy():
+    """The numba row hash (from 100,000 values) equals the numpy one, for float32 and float64."""
+    rng = np.random.default_rng(3)
+    for dtype in (np.float32, np.float64):
+        x = rng.normal(size=(3000, 40)).astype(dtype)             # 120,000 values: the kernel
+        pieces = np.concatenate([clusters._row_hashes(x[lo:lo + 500]) for lo in range(0, 3000, 500)])
+        assert clusters._row_hashes(x).tolist() == pieces.tolist()  # 20,000 values each: numpy

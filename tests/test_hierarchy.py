@@ -2,6 +2,8 @@
 import hdbscan
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from sklearn.datasets import make_blobs
 
 from slicefind.clusters import _renumber
@@ -81,3 +83,31 @@ def test_tree_vote_cut_falls_back_to_the_parent():
     assert [1] == tree_vote(tree, labels, np.ones((1, 4)), distances=distances, cut=cut).tolist()
     cut[1] = 0.1
     assert [ROOT] == tree_vote(tree, labels, np.ones((1, 4)), distances=distances, cut=cut).tolist()
+
+
+@st.composite
+def _preorder_trees(draw):
+    """A random tree in preorder: node j's parent is one of the nodes on the path to j-1."""
+    m = draw(st.integers(2, 25))
+    parent = [-1]
+    for j in range(1, m):
+        path = [j - 1]
+        while parent[path[-1]] >= 0:
+            path.append(parent[path[-1]])
+        parent.append(draw(st.sampled_from(path)))
+    return Tree.from_parents(parent)
+
+
+@settings(max_examples=60, deadline=None)
+@given(_preorder_trees(), st.integers(0, 2**31 - 1))
+def test_bisection_vote_equals_the_scan_down_the_chain(tree, seed):
+    """The bisection (no cuts) and the node-by-node scan (infinite cuts) give the same node,
+    and that node's subtree holds more than half the vote (or it is the root)."""
+    rng = np.random.default_rng(seed)
+    labels = rng.integers(0, tree.n_nodes, (40, 7))
+    weights = rng.random((40, 7))
+    fast = tree_vote(tree, labels, weights)
+    scan = tree_vote(tree, labels, weights, distances=np.zeros((40, 7)), cut=np.full(tree.n_nodes, np.inf))
+    assert fast.tolist() == scan.tolist()
+    inside = (labels >= fast[:, None]) & (labels < tree.end[fast][:, None])
+    assert np.all(((weights * inside).sum(axis=1) > weights.sum(axis=1) / 2) | (fast == ROOT))

@@ -107,20 +107,54 @@ def enriched_items(table: EvalTable, rows: np.ndarray, *, items, top: int = 5,
     return frame[columns]
 
 
+class _Codes:
+    """The table's labels and predictions as integer codes (pandas' factorize), computed
+    once per table: a description per tree node reads them hundreds of times."""
+
+    def __init__(self, table: EvalTable):
+        self.label, self.label_values = pd.factorize(pd.Series(table.label, dtype=object), sort=False)
+        self.overall = np.bincount(self.label, minlength=len(self.label_values))
+        if table.prediction is not None:
+            self.prediction, self.prediction_values = pd.factorize(pd.Series(table.prediction, dtype=object),
+                                                                   sort=False)
+
+
+_CODES: dict[int, tuple] = {}
+
+
+def _codes(table: EvalTable) -> _Codes:
+    """`_Codes` of `table`, kept while the table lives (keyed by identity)."""
+    import weakref
+
+    key = id(table)
+    held = _CODES.get(key)
+    if held is None or held[0]() is not table:
+        held = (weakref.ref(table, lambda _ref, key=key: _CODES.pop(key, None)), _Codes(table))
+        _CODES[key] = held
+    return held[1]
+
+
+def _ranked(values, counts: np.ndarray, top: int) -> np.ndarray:
+    """Indices of the `top` largest counts (ties by the values' text), counts > 0 only."""
+    present = np.flatnonzero(counts > 0)
+    texts = np.array([_value_text(values[i]) for i in present], dtype=object)
+    order = np.lexsort((texts, -counts[present]))
+    return present[order[:top]]
+
+
 def label_shares(table: EvalTable, rows: np.ndarray, *, top: int = 3) -> pd.DataFrame:
     """The most common true labels in `rows`: ``label, n_rows, slice_share, overall_share``
     (empty when the table has no labels)."""
     columns = ["label", "n_rows", "slice_share", "overall_share"]
     if table.label is None or rows.size == 0:
         return pd.DataFrame({c: pd.Series(dtype=object if c == "label" else float) for c in columns})
-    inside = pd.Series(table.label[rows]).value_counts(sort=False)
-    overall = pd.Series(table.label).value_counts(sort=False)
-    frame = pd.DataFrame({"label": inside.index.to_numpy(dtype=object), "n_rows": inside.to_numpy(np.int64)})
-    frame["slice_share"] = frame["n_rows"] / rows.size
-    frame["overall_share"] = overall.reindex(inside.index).to_numpy() / table.n_rows
-    frame["_text"] = frame["label"].map(_value_text)
-    frame = frame.sort_values(["n_rows", "_text"], ascending=[False, True], kind="stable")
-    return frame.drop(columns="_text").head(top).reset_index(drop=True)[columns]
+    codes = _codes(table)
+    inside = np.bincount(codes.label[rows], minlength=len(codes.label_values))
+    pick = _ranked(codes.label_values, inside, top)
+    return pd.DataFrame({"label": pd.Series([codes.label_values[i] for i in pick], dtype=object),
+                         "n_rows": inside[pick].astype(np.int64),
+                         "slice_share": inside[pick] / rows.size,
+                         "overall_share": codes.overall[pick] / table.n_rows})[columns]
 
 
 def confusions(table: EvalTable, rows: np.ndarray, *, top: int = 5) -> pd.DataFrame:
@@ -135,13 +169,18 @@ def confusions(table: EvalTable, rows: np.ndarray, *, top: int = 5) -> pd.DataFr
     wrong = rows[table.errors[rows]]
     if wrong.size == 0:
         return empty
-    pairs = pd.DataFrame({"label": table.label[wrong], "prediction": table.prediction[wrong]})
-    counts = pairs.value_counts(sort=False).rename("n_errors").reset_index()
-    counts["_text"] = counts["label"].map(_value_text) + " -> " + counts["prediction"].map(_value_text)
-    counts = counts.sort_values(["n_errors", "_text"], ascending=[False, True], kind="stable").head(top)
-    counts["error_share"] = counts["n_errors"] / wrong.size
-    counts["n_errors"] = counts["n_errors"].astype(np.int64)
-    return counts.drop(columns="_text").reset_index(drop=True)[columns]
+    codes = _codes(table)
+    width = len(codes.prediction_values)
+    pairs, counts = np.unique(codes.label[wrong].astype(np.int64) * width + codes.prediction[wrong],
+                              return_counts=True)
+    texts = [f"{_value_text(codes.label_values[p // width])} -> {_value_text(codes.prediction_values[p % width])}"
+             for p in pairs]
+    order = np.lexsort((np.array(texts, dtype=object), -counts))[:top]
+    return pd.DataFrame({"label": pd.Series([codes.label_values[pairs[i] // width] for i in order], dtype=object),
+                         "prediction": pd.Series([codes.prediction_values[pairs[i] % width] for i in order],
+                                                 dtype=object),
+                         "n_errors": counts[order].astype(np.int64),
+                         "error_share": counts[order] / wrong.size})[columns]
 
 
 def distinctive_terms(texts, rows: np.ndarray, *, top: int = 10, random_state=0) -> pd.DataFrame:

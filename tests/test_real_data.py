@@ -1,40 +1,23 @@
 """find_slices on real tables the project did not generate: the top of the table is distinct.
 
-Data: statsmodels' bundled datasets (no download). ``randhie``: the RAND Health Insurance
-Experiment sample (20,190 people), target "any outpatient visit" (``mdvis > 0``). ``fair``:
-Fair's 1978 survey of extramarital affairs (6,366 women), target "any affair"
-(``affairs > 0``). The model is scikit-learn's HistGradientBoostingClassifier, its
-predictions out of fold (5-fold ``cross_val_predict``), as a practitioner would score a
-dev set.
+Data: statsmodels' bundled ``randhie`` and ``fair`` tables, scored out of fold by a
+gradient-boosting model (`real_tables.scored`).
 """
 import re
 
 import numpy as np
-import pandas as pd
 import pytest
 
 import slicefind as sf
 from slicefind.slices import jaccard
 
-statsmodels = pytest.importorskip("statsmodels.api")
-
-
-def _scored(name: str, target: str, positive) -> tuple[pd.DataFrame, str]:
-    from sklearn.ensemble import HistGradientBoostingClassifier
-    from sklearn.model_selection import cross_val_predict
-
-    data = getattr(statsmodels.datasets, name).load_pandas().data
-    label = f"{target}_any"
-    y = positive(data[target]).astype(int)
-    x = data.drop(columns=[target])
-    pred = cross_val_predict(HistGradientBoostingClassifier(random_state=0), x, y, cv=5)
-    return x.assign(**{label: y.to_numpy(), "predicted": pred}), label
+pytest.importorskip("statsmodels.api")
+from real_tables import scored  # noqa: E402  (tests/ is on the path, as for review_helpers)
 
 
 @pytest.fixture(scope="module", params=["randhie", "fair"])
 def scanned(request):
-    target = {"randhie": "mdvis", "fair": "affairs"}[request.param]
-    frame, label = _scored(request.param, target, lambda v: v > 0)
+    frame, label = scored(request.param)
     return request.param, frame, label, sf.find_slices(frame, label=label, prediction="predicted")
 
 

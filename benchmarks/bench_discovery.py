@@ -1,9 +1,13 @@
-"""Benchmark of slice discovery on the parcel-depot demo: recall, speed, sampling.
+"""Benchmark of slice discovery: recall on planted data, null data, real tables, speed.
 
 A script, not a timed test: it prints markdown tables and writes them, with the raw
 numbers, to ``--out`` (JSON). Run from the repository root::
 
     python benchmarks/bench_discovery.py recall             # 2 x 5 seeds x 6 set-ups, ~15 min
+    python benchmarks/bench_discovery.py stamped            # 10 seeds, with the notebook reference
+    python benchmarks/bench_discovery.py null               # 100 seeds of null data
+    python benchmarks/bench_discovery.py real               # statsmodels' randhie and fair
+    python benchmarks/bench_discovery.py placing --rows 1000000
     python benchmarks/bench_discovery.py speed --rows 10000 50000 100000 1000000
     python benchmarks/bench_discovery.py sampling --rows 100000 --seeds 5
     python benchmarks/bench_discovery.py options --rows 5000  # ways to be reproducible
@@ -21,6 +25,22 @@ recall
     ``error_modes`` alone (the frame cut down to label and prediction, so no rule
     competes), and rules together with ``clusters="regions"``, ``"error_modes"`` and
     ``"both"``.
+stamped
+    `slicefind.demodata.make_stamped`: a customs stamp over every class, recorded in no
+    column, embeddings a 10-d PCA of the pixels. find_slices with the whole cluster trees
+    (default), with the flat HDBSCAN cut only (``hierarchy=False``: the candidates before
+    the trees), and the reference a user would write in a notebook, ``umap.UMAP(
+    n_components=5)`` + ``hdbscan.HDBSCAN(min_cluster_size=30)``, scored by its best cluster.
+null
+    The depot's metadata and embeddings with errors drawn by a coin: the share of seeds in
+    which nothing is listed (the false discovery control over rules and tree nodes).
+real
+    statsmodels' ``randhie`` and ``fair`` scored out of fold (``tests/real_tables.py``):
+    listed slices, the largest listed share of rows, the top ten's largest pairwise Jaccard.
+placing
+    Rows outside the fit placed with faiss's inverted file (default) and with an exact
+    search, same scan otherwise: seconds, ARI of the flat labels, share of rows on the same
+    tree node, whether the listed slices are the same.
 speed
     ``find_slices`` with 384-d embeddings, each run in a fresh process: *first* with an
     empty numba cache (``NUMBA_CACHE_DIR`` pointed at a new folder: everything numba
@@ -264,12 +284,13 @@ def _spawn(rows: int, seed: int, cache_dir: str, timeout: int) -> dict:
     raise RuntimeError(f"worker failed ({proc.returncode}): {proc.stderr[-2000:]}")
 
 
-def speed_section(sizes: list[int], seed: int, timeout: int) -> dict:
-    """First (cold numba cache) and repeat (warm cache) runs at each size, fresh processes."""
+def speed_section(sizes: list[int], seed: int, timeout: int, repeats: int = 3) -> dict:
+    """First (cold numba cache) and `repeats` repeat (warm cache) runs at each size, each in
+    a fresh process; the table ends with the median of the repeats."""
     results = []
     for rows in sizes:
         with tempfile.TemporaryDirectory(prefix="slicefind-numba-") as cache:
-            for run in ("first", "repeat"):
+            for run in ["first"] + [f"repeat {i + 1}" for i in range(repeats)]:
                 try:
                     r = _spawn(rows, seed, cache, timeout)
                 except (RuntimeError, subprocess.TimeoutExpired) as exc:
@@ -294,6 +315,14 @@ def speed_section(sizes: list[int], seed: int, timeout: int) -> dict:
                      f"{hd:.1f} | {t['assign']:.1f} | {r['peak_mb']:,} ({r['before_mb']:,}, {r['input_mb']:,}) | "
                      f"{r['clusters32_s']:.1f}, {r['clusters32_peak_mb']:,} ({r['clusters32_before_mb']:,}) | "
                      f"{r['load']} |")
+    lines += ["", "| rows | median of repeats: find_slices s | assign s | layout s | peak MB |", "|---|---|---|---|---|"]
+    for rows in sizes:
+        reps = [r for r in results if r["rows"] == rows and r["run"].startswith("repeat") and "error" not in r]
+        if reps:
+            lines.append(f"| {rows:,} | {np.median([r['seconds'] for r in reps]):.1f} | "
+                         f"{np.median([r['timings']['assign'] for r in reps]):.1f} | "
+                         f"{np.median([r['timings']['layout'] for r in reps]):.1f} | "
+                         f"{np.median([r['peak_mb'] for r in reps]):,.0f} |")
     text = "\n".join(lines)
     print(text, flush=True)
     return dict(raw=results, markdown=text)
@@ -383,9 +412,9 @@ _OPTION_CODE = {
         "umap.UMAP(n_components=8, random_state=0, precomputed_knn=(idx, dist, None)).fit_transform(x)"),
     "slicefind: exact kNN + numpy fuzzy graph + seeded layout": (
         "from slicefind import clusters as C\n"
-        "z = C._pca(x, np.arange(len(x)), np.arange(len(x)), 50, 'cosine')\n"
+        "z = C._project(x, *C._pca_axes(x, 50, 'cosine'), 'cosine')\n"
         "idx, dist = C._knn(z, 15)\n"
-        "C._umap_layout(z, C._fuzzy_graph(idx, dist), 8, 0, init='pca', n_epochs=200, progress=False, what='')"),
+        "C._umap_layout(z, C._fuzzy_graph(idx, dist), 8, 0, init='pca', n_epochs=100, progress=False, what='')"),
 }
 
 _OPTION_TEMPLATE = """
@@ -443,15 +472,200 @@ def options_section(rows: int, timeout: int) -> dict:
     return dict(raw=results, markdown=text)
 
 
+# ------------------------------------------------------------------ stamped: a cross-class degradation
+
+def _best(found, planted: np.ndarray, top: int = 10) -> tuple[float, int | None]:
+    """(best Jaccard of the top entries with `planted`, 1-based rank of the first >= 0.5)."""
+    ids = list(found.table["slice_id"].head(top))
+    js = [_jaccard(found.rows(s), planted) for s in ids]
+    rank = next((i + 1 for i, j in enumerate(js) if j >= JACCARD_FOUND), None)
+    return (max(js) if js else 0.0), rank
+
+
+def stamped_section(seeds: list[int], n_rows: int = 1797) -> dict:
+    """`make_stamped` over `seeds`: find_slices (whole trees), find_slices with the flat
+    cut only (``hierarchy=False``, the candidates before the trees), and the reference
+    notebook: ``umap.UMAP(n_components=5, random_state=seed)`` then
+    ``hdbscan.HDBSCAN(min_cluster_size=30)`` on the same embeddings, scored by its best
+    cluster (it has no test and no ranking, so any of its clusters may count)."""
+    import warnings
+
+    import hdbscan
+    import umap
+
+    from slicefind import find_slices
+    from slicefind.demodata import make_stamped
+
+    raw = []
+    for seed in seeds:
+        data = make_stamped(n_rows, random_state=seed)
+        planted = data.planted["customs stamp"].rows
+        entry = dict(seed=seed, n_stamped=int(planted.size))
+        for name, opts in (("trees", {}), ("flat cut only", {"hierarchy": False})):
+            start = time.perf_counter()
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore")
+                found = find_slices(data.frame, label="true_digit", prediction="read_as",
+                                    id_column="parcel_id", embeddings=data.embeddings,
+                                    random_state=seed, cluster_options=opts)
+            best, rank = _best(found, planted)
+            entry[name] = dict(best=round(best, 3), rank=rank, seconds=round(time.perf_counter() - start, 2))
+        start = time.perf_counter()
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            layout = umap.UMAP(n_components=5, random_state=seed).fit_transform(data.embeddings)
+        labels = hdbscan.HDBSCAN(min_cluster_size=30).fit_predict(layout)
+        clusters = [np.flatnonzero(labels == c) for c in np.unique(labels[labels >= 0])]
+        best = max((_jaccard(c, planted) for c in clusters), default=0.0)
+        entry["notebook"] = dict(best=round(best, 3), n_clusters=len(clusters),
+                                 seconds=round(time.perf_counter() - start, 2))
+        raw.append(entry)
+        print(json.dumps(entry), flush=True)
+    lines = [f"Cross-class stamp (make_stamped({n_rows}), 12% stamped, 10-d pixel PCA), seeds {seeds}; "
+             "found = Jaccard >= 0.5", "",
+             "| method | recall@10 | best Jaccard per seed | median seconds |", "|---|---|---|---|"]
+    for name, label in (("trees", "find_slices (whole trees, default)"),
+                        ("flat cut only", "find_slices, flat cut only (hierarchy=False)"),
+                        ("notebook", "notebook: UMAP(5) + HDBSCAN(30), best cluster")):
+        got = [e[name] for e in raw]
+        found_n = sum(g["best"] >= JACCARD_FOUND for g in got)
+        bests = " ".join(f"{g['best']:.2f}" for g in got)
+        lines.append(f"| {label} | {found_n / len(got):.2f} | {bests} | "
+                     f"{np.median([g['seconds'] for g in got]):.1f} |")
+    text = "\n".join(lines)
+    print(text, flush=True)
+    return dict(raw=raw, markdown=text)
+
+
+# ------------------------------------------------------------------ null: nothing to find
+
+def null_section(seeds: list[int], n_rows: int = 3000) -> dict:
+    """Errors independent of everything (a coin with the depot's error rate), the depot's
+    metadata and embeddings given: the share of seeds in which nothing is listed."""
+    import warnings
+
+    from slicefind import find_slices
+    from slicefind.demodata import make_depot
+
+    depot = make_depot(n_rows, random_state=0)
+    frame = depot.frame.drop(columns=["label", "pred"])
+    rate = float((depot.frame["label"] != depot.frame["pred"]).mean())
+    raw = []
+    for seed in seeds:
+        errors = np.random.default_rng(1000 + seed).random(n_rows) < rate
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            found = find_slices(frame, errors=errors, embeddings=depot.embeddings, exclude=("parcel_id",),
+                                random_state=seed)
+        n_clusters = int((found.tested["source"] != "rule").sum())
+        raw.append(dict(seed=seed, listed=len(found.table), tested=len(found.tested),
+                        cluster_candidates=n_clusters))
+    clean = sum(r["listed"] == 0 for r in raw)
+    text = (f"Null data (make_depot({n_rows}) metadata and embeddings, errors a coin at {rate:.3f}), "
+            f"{len(seeds)} seeds: nothing listed in {clean} ({clean / len(seeds):.0%}); candidates "
+            f"tested per seed median {np.median([r['tested'] for r in raw]):.0f}, of them cluster "
+            f"nodes {np.median([r['cluster_candidates'] for r in raw]):.0f}; most listed in one seed "
+            f"{max(r['listed'] for r in raw)}")
+    print(text, flush=True)
+    return dict(raw=raw, markdown=text)
+
+
+# ------------------------------------------------------------------ real tables
+
+def real_section() -> dict:
+    """statsmodels' randhie and fair, scored out of fold (tests/real_tables.py): what the
+    top of the table looks like."""
+    sys.path.insert(0, os.path.join(ROOT, "tests"))
+    from real_tables import scored
+
+    from slicefind import find_slices
+
+    out, lines = {}, []
+    for name in ("randhie", "fair"):
+        frame, label = scored(name)
+        start = time.perf_counter()
+        found = find_slices(frame, label=label, prediction="predicted")
+        seconds = time.perf_counter() - start
+        ids = list(found.table["slice_id"].head(10))
+        rows = {s: found.rows(s) for s in ids}
+        worst = max((_jaccard(rows[a], rows[b]) for i, a in enumerate(ids) for b in ids[i + 1:]), default=0.0)
+        top = found.table.head(10)
+        out[name] = dict(n_rows=len(frame), listed=len(found.table), seconds=round(seconds, 2),
+                         max_share=float(found.table["n_rows"].max() / len(frame)) if len(found.table) else 0.0,
+                         max_pairwise_jaccard_top10=round(worst, 3),
+                         top=[dict(slice_id=r.slice_id, share=round(r.n_rows / len(frame), 3),
+                                   error_rate=round(r.error_rate, 3), lift=round(r.lift, 2),
+                                   description=r.description) for r in top.itertuples()])
+        lines += [f"{name}: {len(frame):,} rows, error rate {found.error_rate:.3f}, {len(found.table)} listed "
+                  f"in {seconds:.1f} s; largest listed share {out[name]['max_share']:.1%}; top-10 max "
+                  f"pairwise Jaccard {worst:.3f}", "",
+                  "| id | rows | error rate | lift | description |", "|---|---|---|---|---|"]
+        lines += [f"| {t['slice_id']} | {t['share']:.1%} | {t['error_rate']:.3f} | {t['lift']:.2f} | "
+                  f"{t['description']} |" for t in out[name]["top"][:6]] + [""]
+    text = "\n".join(lines)
+    print(text, flush=True)
+    return dict(raw=out, markdown=text)
+
+
+# ------------------------------------------------------------------ placing: approximate vs exact
+
+def placing_section(rows: int, seed: int) -> dict:
+    """At `rows` (384-d depot embeddings), the clusters placed with faiss's inverted file
+    (default) and with an exact search: seconds of the placing step, agreement of the
+    flat labels (ARI, noise as singletons) and of the tree nodes (share of rows on the
+    same deepest node), and whether the listed slices are the same."""
+    import warnings
+
+    from sklearn.metrics import adjusted_rand_score  # the named check
+
+    from slicefind import find_slices
+    from slicefind.clusters import noise_as_singletons
+    from slicefind.demodata import make_depot
+
+    depot = make_depot(rows, random_state=seed)
+    emb = embeddings_384(depot)
+    frame = depot.frame
+    del depot
+    runs = {}
+    for placing in ("approximate", "exact"):
+        start = time.perf_counter()
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            found = find_slices(frame, label="label", prediction="pred", embeddings=emb,
+                                exclude=("parcel_id",), random_state=seed,
+                                cluster_options={"placing": placing, "progress": False})
+        runs[placing] = (found, time.perf_counter() - start)
+        print(f"{placing}: {runs[placing][1]:.1f} s, assign "
+              f"{found.extras['clusters'].diagnostics['timings']['assign']:.1f} s", flush=True)
+    a, b = runs["approximate"][0].extras["clusters"], runs["exact"][0].extras["clusters"]
+    result = dict(rows=rows,
+                  seconds={k: round(v[1], 1) for k, v in runs.items()},
+                  assign_s={k: v[0].extras["clusters"].diagnostics["timings"]["assign"] for k, v in runs.items()},
+                  ari={k: round(float(adjusted_rand_score(noise_as_singletons(a.labels[k]),
+                                                          noise_as_singletons(b.labels[k]))), 4)
+                       for k in a.labels},
+                  same_node={k: round(float(np.mean(a.nodes[k] == b.nodes[k])), 4) for k in a.nodes},
+                  same_table=bool(runs["approximate"][0].table[["description", "n_rows"]]
+                                  .equals(runs["exact"][0].table[["description", "n_rows"]])))
+    text = (f"Placing at {rows:,} rows (384-d): assign {result['assign_s']['approximate']:.1f} s (inverted "
+            f"file) vs {result['assign_s']['exact']:.1f} s (exact); flat labels ARI {result['ari']}; "
+            f"rows on the same tree node {result['same_node']}; same listed slices: {result['same_table']}")
+    print(text, flush=True)
+    return dict(raw=result, markdown=text)
+
+
 def main(argv=None) -> None:
     parser = argparse.ArgumentParser(description=__doc__.split("\n")[0])
-    parser.add_argument("section", nargs="?", default="all", choices=("recall", "speed", "sampling", "options", "all"))
+    parser.add_argument("section", nargs="?", default="all",
+                        choices=("recall", "stamped", "null", "real", "placing", "speed", "sampling", "options", "all"))
     parser.add_argument("--rows", type=int, nargs="*", default=None)
-    parser.add_argument("--seeds", type=int, default=5, help="seeds 0..N-1")
+    parser.add_argument("--seeds", type=int, default=None,
+                        help="seeds 0..N-1 (default: recall and sampling 5, stamped 10, null 100)")
     parser.add_argument("--seed", type=int, default=0)
     parser.add_argument("--tape-share", type=float, nargs="*", default=[0.05, 0.015],
                         help="recall: share of parcels with the unrecorded degradation")
     parser.add_argument("--timeout", type=int, default=3600, help="seconds per speed run")
+    parser.add_argument("--repeats", type=int, default=3, help="speed: warm-cache runs per size")
     parser.add_argument("--out", default=None, help="JSON file for the results")
     parser.add_argument("--worker", action="store_true", help=argparse.SUPPRESS)
     args = parser.parse_args(argv)
@@ -459,14 +673,25 @@ def main(argv=None) -> None:
         args.rows = args.rows[0]
         _worker(args)
         return
-    seeds = list(range(args.seeds))
+    def seeds_or(default: int) -> list[int]:
+        return list(range(args.seeds if args.seeds is not None else default))
+
+    seeds = seeds_or(5)
     results = {}
     if args.section in ("recall", "all"):
         for share in args.tape_share:
             results[f"recall_tape_{share}"] = recall_section((args.rows or [6000])[0], seeds, share)
+    if args.section in ("stamped", "all"):
+        results["stamped"] = stamped_section(seeds_or(10))
+    if args.section in ("null", "all"):
+        results["null"] = null_section(seeds_or(100))
+    if args.section in ("real", "all"):
+        results["real"] = real_section()
+    if args.section in ("placing", "all"):
+        results["placing"] = placing_section((args.rows or [1_000_000])[0], args.seed)
     if args.section in ("speed", "all"):
         results["speed"] = speed_section(args.rows or [10_000, 50_000, 100_000, 1_000_000], args.seed,
-                                         args.timeout)
+                                         args.timeout, args.repeats)
     if args.section in ("sampling", "all"):
         results["sampling"] = sampling_section((args.rows or [100_000])[0], seeds)
     if args.section in ("options", "all"):

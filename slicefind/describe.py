@@ -72,9 +72,27 @@ def enriched_items(table: EvalTable, rows: np.ndarray, *, items, top: int = 5,
     Columns: ``item, column, n_rows, slice_share, overall_share, lift``.
     """
     columns = ["item", "column", "n_rows", "slice_share", "overall_share", "lift"]
-    if items is None or len(items) == 0 or rows.size == 0 or (items.bits is None and inside is None):
+    got = _enriched(table, rows, items, top, max_per_column, exclude_texts, inside)
+    if got is None:
         return pd.DataFrame({c: pd.Series(dtype=object if c in ("item", "column") else float)
                              for c in columns})
+    chosen, inside, slice_share, overall, lift = got
+    frame = pd.DataFrame({
+        "item": [items.items[i].text for i in chosen],
+        "column": [items.items[i].column for i in chosen],
+        "n_rows": inside[chosen].astype(np.int64),
+        "slice_share": slice_share[chosen],
+        "overall_share": overall[chosen],
+        "lift": lift[chosen],
+    })
+    return frame[columns]
+
+
+def _enriched(table, rows, items, top, max_per_column, exclude_texts, inside):
+    """`enriched_items` as arrays: (chosen item indices, counts inside, slice shares,
+    overall shares, lifts), or None when nothing can be counted."""
+    if items is None or len(items) == 0 or rows.size == 0 or (items.bits is None and inside is None):
+        return None
     if inside is None:
         mask = np.zeros(table.n_rows, dtype=bool)
         mask[rows] = True
@@ -96,15 +114,7 @@ def enriched_items(table: EvalTable, rows: np.ndarray, *, items, top: int = 5,
             continue
         per_column[item.column] = per_column.get(item.column, 0) + 1
         chosen.append(i)
-    frame = pd.DataFrame({
-        "item": [items.items[i].text for i in chosen],
-        "column": [items.items[i].column for i in chosen],
-        "n_rows": inside[chosen].astype(np.int64),
-        "slice_share": slice_share[chosen],
-        "overall_share": overall[chosen],
-        "lift": lift[chosen],
-    })
-    return frame[columns]
+    return chosen, inside, slice_share, overall, lift
 
 
 class _Codes:
@@ -146,15 +156,21 @@ def label_shares(table: EvalTable, rows: np.ndarray, *, top: int = 3) -> pd.Data
     """The most common true labels in `rows`: ``label, n_rows, slice_share, overall_share``
     (empty when the table has no labels)."""
     columns = ["label", "n_rows", "slice_share", "overall_share"]
+    values, counts, overall = _label_counts(table, rows, top)
+    return pd.DataFrame({"label": pd.Series(values, dtype=object),
+                         "n_rows": np.asarray(counts, dtype=np.int64),
+                         "slice_share": np.asarray(counts, dtype=float) / max(rows.size, 1),
+                         "overall_share": np.asarray(overall, dtype=float) / table.n_rows})[columns]
+
+
+def _label_counts(table: EvalTable, rows: np.ndarray, top: int):
+    """(the `top` commonest labels in `rows`, their counts there, their counts overall)."""
     if table.label is None or rows.size == 0:
-        return pd.DataFrame({c: pd.Series(dtype=object if c == "label" else float) for c in columns})
+        return [], [], []
     codes = _codes(table)
     inside = np.bincount(codes.label[rows], minlength=len(codes.label_values))
     pick = _ranked(codes.label_values, inside, top)
-    return pd.DataFrame({"label": pd.Series([codes.label_values[i] for i in pick], dtype=object),
-                         "n_rows": inside[pick].astype(np.int64),
-                         "slice_share": inside[pick] / rows.size,
-                         "overall_share": codes.overall[pick] / table.n_rows})[columns]
+    return [codes.label_values[i] for i in pick], inside[pick], codes.overall[pick]
 
 
 def confusions(table: EvalTable, rows: np.ndarray, *, top: int = 5) -> pd.DataFrame:
@@ -162,13 +178,21 @@ def confusions(table: EvalTable, rows: np.ndarray, *, top: int = 5) -> pd.DataFr
     ``label, prediction, n_errors, error_share`` (share of the slice's errors); empty
     without labels and predictions."""
     columns = ["label", "prediction", "n_errors", "error_share"]
-    empty = pd.DataFrame({"label": pd.Series(dtype=object), "prediction": pd.Series(dtype=object),
-                          "n_errors": pd.Series(dtype=np.int64), "error_share": pd.Series(dtype=float)})
+    labels, predictions, counts, n_wrong = _confusion_counts(table, rows, top)
+    return pd.DataFrame({"label": pd.Series(labels, dtype=object),
+                         "prediction": pd.Series(predictions, dtype=object),
+                         "n_errors": np.asarray(counts, dtype=np.int64),
+                         "error_share": np.asarray(counts, dtype=float) / max(n_wrong, 1)})[columns]
+
+
+def _confusion_counts(table: EvalTable, rows: np.ndarray, top: int):
+    """(labels, predictions, error counts) of the `top` commonest pairs among the errors
+    in `rows`, and the number of those errors."""
     if table.label is None or table.prediction is None or rows.size == 0:
-        return empty
+        return [], [], [], 0
     wrong = rows[table.errors[rows]]
     if wrong.size == 0:
-        return empty
+        return [], [], [], 0
     codes = _codes(table)
     width = len(codes.prediction_values)
     pairs, counts = np.unique(codes.label[wrong].astype(np.int64) * width + codes.prediction[wrong],
@@ -176,11 +200,8 @@ def confusions(table: EvalTable, rows: np.ndarray, *, top: int = 5) -> pd.DataFr
     texts = [f"{_value_text(codes.label_values[p // width])} -> {_value_text(codes.prediction_values[p % width])}"
              for p in pairs]
     order = np.lexsort((np.array(texts, dtype=object), -counts))[:top]
-    return pd.DataFrame({"label": pd.Series([codes.label_values[pairs[i] // width] for i in order], dtype=object),
-                         "prediction": pd.Series([codes.prediction_values[pairs[i] % width] for i in order],
-                                                 dtype=object),
-                         "n_errors": counts[order].astype(np.int64),
-                         "error_share": counts[order] / wrong.size})[columns]
+    return ([codes.label_values[pairs[i] // width] for i in order],
+            [codes.prediction_values[pairs[i] % width] for i in order], counts[order], int(wrong.size))
 
 
 def distinctive_terms(texts, rows: np.ndarray, *, top: int = 10, random_state=0) -> pd.DataFrame:
@@ -295,16 +316,15 @@ def exemplars(table: EvalTable, rows: np.ndarray, *, coords=None, n_exemplars: i
     return frame
 
 
-def _confusion_text(conf: pd.DataFrame, n_errors: int) -> str:
+def _confusion_text(labels, predictions, counts, n_errors: int) -> str:
     """'mostly 4 -> 9' or '3 -> 5 (31%), 8 -> 1 (22%)', or '' when nothing stands out."""
-    if conf.empty or n_errors < 3:
+    if not len(counts) or n_errors < 3:
         return ""
-    pair = f"{_value_text(conf.at[0, 'label'])} -> {_value_text(conf.at[0, 'prediction'])}"
-    if conf.at[0, "error_share"] >= 0.5:
-        return f"mostly {pair}"
+    shares = np.asarray(counts, dtype=float) / n_errors
+    if shares[0] >= 0.5:
+        return f"mostly {_value_text(labels[0])} -> {_value_text(predictions[0])}"
     parts = [f"{_value_text(a)} -> {_value_text(b)} ({_percent(s)})"
-             for a, b, s in conf[["label", "prediction", "error_share"]].head(2).itertuples(index=False)
-             if s >= 0.2]
+             for a, b, s in list(zip(labels, predictions, shares))[:2] if s >= 0.2]
     return ", ".join(parts)
 
 
@@ -316,26 +336,29 @@ def describe_rows(table: EvalTable, rows: np.ndarray, *, items=None, exclude_tex
     none qualifies), a dominant true label (same test, named by the label column), the
     dominant confusions, then size and error rate: ``71% label_stock = glossy, 80%
     true_digit = 4, mostly 4 -> 9; 412 rows, 38% errors``.
-    The slice id is not part of it. ``inside``: as in `enriched_items`.
+    The slice id is not part of it. ``inside``: as in `enriched_items`. Works on arrays
+    throughout: a scan describes every node of its cluster trees.
     """
     rows = np.asarray(rows, dtype=np.intp)
     parts = []
     label_name = label_column(table)
-    enriched = enriched_items(table, rows, items=items, top=6, max_per_column=1,
-                              exclude_texts=exclude_texts, inside=inside)
-    enriched = enriched[enriched["column"] != label_name]       # the label is named below
-    for text, share, lift in enriched[["item", "slice_share", "lift"]].itertuples(index=False):
-        if share >= SUMMARY_MIN_SHARE and lift >= SUMMARY_MIN_LIFT and len(parts) < 2:
-            parts.append(f"{_percent(share)} {text}")
+    got = _enriched(table, rows, items, 6, 1, exclude_texts, inside)
+    for i in (got[0] if got is not None else []):
+        _, _, slice_share, _, lift = got
+        if items.items[i].column == label_name:          # the label is named below
+            continue
+        if slice_share[i] >= SUMMARY_MIN_SHARE and lift[i] >= SUMMARY_MIN_LIFT and len(parts) < 2:
+            parts.append(f"{_percent(slice_share[i])} {items.items[i].text}")
     if not parts and items is not None and len(items) and not exclude_texts:
         parts.append("no metadata value stands out")
-    labels = label_shares(table, rows, top=1)
-    if not labels.empty:
-        share, overall = labels.at[0, "slice_share"], labels.at[0, "overall_share"]
-        if share >= SUMMARY_MIN_SHARE and share >= SUMMARY_MIN_LIFT * overall:
-            parts.append(f"{_percent(share)} {label_name} = {_value_text(labels.at[0, 'label'])}")
+    values, counts, overall = _label_counts(table, rows, 1)
+    if len(values):
+        share, base = counts[0] / rows.size, overall[0] / table.n_rows
+        if share >= SUMMARY_MIN_SHARE and share >= SUMMARY_MIN_LIFT * base:
+            parts.append(f"{_percent(share)} {label_name} = {_value_text(values[0])}")
     n_errors = int(table.errors[rows].sum())
-    confusion = _confusion_text(confusions(table, rows, top=2), n_errors)
+    labels, predictions, pair_counts, n_wrong = _confusion_counts(table, rows, 2)
+    confusion = _confusion_text(labels, predictions, pair_counts, n_errors)
     if confusion:
         parts.append(confusion)
     size = f"{rows.size:,} rows, {_percent(n_errors / rows.size) if rows.size else '0%'} errors"

@@ -321,8 +321,8 @@ def render_report(found, inputs: ReportInputs | None = None) -> str:
                      f"(<code>{html.escape(label_name)} = …</code>) when the label is mined.</p>")
         parts.append(_table(conf, [("label", label_name, "text"), ("prediction", prediction_name, "text"),
                                    ("n_errors", "errors", "int"), ("error_share", "share of errors", "pct"),
-                                   ("n_class_rows", f"rows of that {label_name}", "int"),
-                                   ("class_rate", f"share of that {label_name} read so", "pct")],
+                                   ("n_class_rows", f"rows with this {label_name}", "int"),
+                                   ("class_rate", "of them read so", "pct")],
                             css="confusions"))
 
     top_ids = list(found.table["slice_id"].head(MAX_SLICES_DETAILED))

@@ -9,7 +9,7 @@ from slicefind.compare import Comparison, compare
 from slicefind.describe import SliceDescription, describe_slice
 from slicefind.queue import Queue, build_queue
 from slicefind.slices import FoundSlices, find_slices
-from slicefind.table import SlicefindError, SlicefindTypeError, SlicefindValueError
+from slicefind.table import SlicefindError, SlicefindTypeError, SlicefindValueError, WorkspaceBusyError
 from slicefind.tally import Tally, read_reviews, tally
 from slicefind.workspace import Workspace, data_fingerprint
 
@@ -33,6 +33,7 @@ __all__ = [
     "Workspace",
     "data_fingerprint",
     "SlicefindError",
+    "WorkspaceBusyError",
     "SlicefindValueError",
     "SlicefindTypeError",
     "__version__",

@@ -9,8 +9,11 @@ errors exit 2.
 from __future__ import annotations
 
 import argparse
+import csv
 import dataclasses
+import gzip
 import os
+import re
 import sys
 import time
 from typing import TYPE_CHECKING, Sequence
@@ -80,8 +83,102 @@ class _Step:
         return _Ctx()
 
 
+def _int_at_least(low: int):
+    """An argparse type: an integer >= low (refused before any work is done)."""
+    def parse(text: str) -> int:
+        try:
+            value = int(text)
+        except ValueError:
+            raise argparse.ArgumentTypeError(f"must be an integer >= {low}; got {text!r}") from None
+        if value < low:
+            raise argparse.ArgumentTypeError(f"must be an integer >= {low}; got {text!r}")
+        return value
+    return parse
+
+
+def _fraction(*, closed_high: bool = False):
+    """An argparse type: a number in (0, 1), or (0, 1] with ``closed_high``."""
+    span = "(0, 1]" if closed_high else "(0, 1)"
+
+    def parse(text: str) -> float:
+        try:
+            value = float(text)
+        except ValueError:
+            raise argparse.ArgumentTypeError(f"must be a number in {span}; got {text!r}") from None
+        if not (0 < value < 1 or (closed_high and value == 1)):
+            raise argparse.ArgumentTypeError(f"must be a number in {span}; got {text!r}")
+        return value
+    return parse
+
+
+def _finite(text: str) -> float:
+    """An argparse type: a finite number."""
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"must be a number; got {text!r}") from None
+    if not np.isfinite(value):
+        raise argparse.ArgumentTypeError(f"must be a finite number; got {text!r}")
+    return value
+
+
+def _port(text: str) -> int:
+    value = _int_at_least(0)(text)
+    if value > 65535:
+        raise argparse.ArgumentTypeError(f"must be a port number 0-65535 (0: a free one); got {text!r}")
+    return value
+
+
+def _write_csv(frame: pd.DataFrame, path: str) -> None:
+    """A table for people as CSV, its text cells safe to open in a spreadsheet."""
+    from slicefind.table import neutralize_formulas
+
+    neutralize_formulas(frame).to_csv(path, index=False)
+
+
+_DELIMITERS = (",", ";", "\t", "|")
+#: ISO 8601 dates and timestamps, as pandas and most loggers write them
+_ISO_STAMP = re.compile(r"\d{4}-\d{2}-\d{2}([ T]\d{2}:\d{2}(:\d{2}(\.\d+)?)?)?(Z|[+-]\d{2}:?\d{2})?")
+
+
+def _sniff_delimiter(path: str, default: str) -> str:
+    """The delimiter that splits the header line into the most cells (quotes respected)."""
+    opener = gzip.open if path.lower().endswith(".gz") else open
+    try:
+        with opener(path, "rt", encoding="utf-8-sig", errors="replace", newline="") as handle:
+            first = handle.readline()
+    except OSError:
+        return default
+    counts = {d: len(next(csv.reader([first], delimiter=d), [])) for d in _DELIMITERS}
+    best = max(_DELIMITERS, key=lambda d: (counts[d], d == default))
+    return best if counts[best] > counts[default] else default
+
+
+def _parse_timestamps(frame: pd.DataFrame) -> pd.DataFrame:
+    """Text columns whose every value is an ISO date or timestamp, as datetimes."""
+    for column in frame.columns:
+        series = frame[column]
+        if not (pd.api.types.is_object_dtype(series.dtype) or pd.api.types.is_string_dtype(series.dtype)):
+            continue
+        present = series.dropna()
+        if present.empty or not all(isinstance(v, str) for v in present.head(1000)):
+            continue
+        if not present.astype(str).str.fullmatch(_ISO_STAMP.pattern).all():
+            continue
+        try:
+            stamps = pd.to_datetime(series, format="ISO8601")
+        except (ValueError, TypeError, OverflowError):
+            continue                       # e.g. 2024-13-40 or mixed time zones: stays text
+        frame[column] = stamps
+    return frame
+
+
 def _read_table(path, argument: str = "DATA") -> pd.DataFrame:
-    """A CSV, TSV or Parquet file as a DataFrame, or a clear error naming the argument."""
+    """A CSV, TSV or Parquet file as a DataFrame, or a clear error naming the argument.
+
+    CSV files may separate cells with ``,`` ``;`` tab or ``|`` (sniffed from the header
+    line); text columns holding only ISO 8601 dates or timestamps are read as datetimes.
+    """
     from slicefind.table import SlicefindTypeError, SlicefindValueError
 
     if not isinstance(path, (str, os.PathLike)):
@@ -93,7 +190,12 @@ def _read_table(path, argument: str = "DATA") -> pd.DataFrame:
     if lower.endswith((".parquet", ".pq")):
         return pd.read_parquet(path)
     if lower.endswith((".csv", ".csv.gz", ".tsv", ".txt")):
-        return pd.read_csv(path, sep="\t" if lower.endswith(".tsv") else ",")
+        sep = _sniff_delimiter(path, "\t" if lower.endswith(".tsv") else ",")
+        try:
+            frame = pd.read_csv(path, sep=sep)
+        except (pd.errors.ParserError, UnicodeDecodeError) as exc:
+            raise SlicefindValueError(f"{argument} file {path!r} is not readable CSV: {exc}") from None
+        return _parse_timestamps(frame)
     raise SlicefindValueError(f"{argument} file {path!r} must be .csv, .tsv or .parquet.")
 
 
@@ -107,7 +209,15 @@ def _read_embeddings(path: str, id_column: str | None, frame: pd.DataFrame) -> n
         return np.load(path, allow_pickle=False)
     vectors = _read_table(path, "--embeddings")
     if id_column and id_column in vectors.columns and id_column in frame.columns:
-        order = pd.Index(vectors[id_column]).get_indexer(frame[id_column])
+        ids = vectors[id_column]
+        repeated = ids[ids.duplicated(keep=False)]
+        if len(repeated):
+            first = repeated.iloc[0]
+            lines = [int(i) + 2 for i in np.flatnonzero((ids == first).to_numpy())[:3]]
+            raise SlicefindValueError(
+                f"--embeddings file {path!r} has {int(ids.duplicated().sum())} repeated "
+                f"{id_column} value(s), e.g. {first!r} on lines {lines}; each id needs one vector.")
+        order = pd.Index(ids).get_indexer(frame[id_column])
         if (order < 0).any():
             missing = frame[id_column].iloc[int(np.flatnonzero(order < 0)[0])]
             raise SlicefindValueError(f"--embeddings file has no vector for {id_column} = {missing!r}.")
@@ -248,7 +358,7 @@ def _scan(found_kwargs, frame, ws_path, *, show=(), images=None, image_column=No
         ws.save_artifact("report", {"images": images, "image_column": image_column,
                                     "text_column": text_column, "data_folder": data_folder,
                                     "notes": list(notes)})
-        found.table.to_csv(os.path.join(ws_path, "slices.csv"), index=False)
+        _write_csv(found.table, os.path.join(ws_path, "slices.csv"))
     if not quiet:
         print(f"{found.n_rows:,} rows, {found.n_errors:,} errors ({found.error_rate:.2%}); "
               f"{len(found.table)} slices pass FDR {found.params['fdr']} of {len(found.tested):,} tested.")
@@ -400,16 +510,18 @@ def cmd_tally(args) -> int:
     from slicefind.workspace import Workspace
 
     ws = Workspace(args.workspace, create=False)
-    counts = ws.import_sheet(args.reviewed)
-    for slice_id, name in _parse_names(args.name).items():
+    names = {sid: ws.check_name(sid, name) for sid, name in _parse_names(args.name).items()}
+    counts = ws.import_sheet(args.reviewed, trust_order=args.trust_order)   # checked first, one transaction
+    for slice_id, name in names.items():
         ws.set_name(slice_id, name, source="cli")
     result = ws.tally(threshold=args.threshold)
-    result.categories.to_csv(os.path.join(ws.path, "tally.csv"), index=False)
-    result.slices.to_csv(os.path.join(ws.path, "verdicts.csv"), index=False)
-    print(f"imported {counts['recorded']} new review events ({counts['unchanged']} unchanged, "
-          f"{counts['blank']} blank lines)")
-    _print_tally(result)
+    _write_csv(result.categories, os.path.join(ws.path, "tally.csv"))
+    _write_csv(result.slices, os.path.join(ws.path, "verdicts.csv"))
     report = _write_report(ws, ws.load_found(), tally_result=result)
+    print(f"imported {counts['recorded']} new review events ({counts['unchanged']} unchanged, "
+          f"{counts['blank']} blank lines; a blank line leaves its row as it was, "
+          "reviewed = no withdraws a review)")
+    _print_tally(result)
     print(f"tally.csv, verdicts.csv and {report} written")
     return 0
 
@@ -475,11 +587,11 @@ def run_compare(workspace_path, after_path, *, data_path=None, id_column=None,
                                     prediction_column=prediction_column, data=data)
         result = compare(ws, after=values, data=data)
     out = os.fspath(out_csv) if out_csv is not None else os.path.join(folder, COMPARE_CSV)
-    result.table.to_csv(out, index=False)
+    _write_csv(result.table, out)
     written = [out]
     if data is not None:
         new_path = os.path.join(os.path.dirname(os.path.abspath(out)), NEW_SLICES_CSV)
-        result.new_slices.to_csv(new_path, index=False)
+        _write_csv(result.new_slices, new_path)
         written.append(new_path)
     params = {**result.params, **info, "after": f"file {os.fspath(after_path)!r}",
               "after_path": os.fspath(after_path), "out_csv": out, "written": written}
@@ -568,7 +680,7 @@ def cmd_demo(args) -> int:
     with step("SIMULATED reviewer tags the queue from the planted ground truth"):
         sheet = _simulated_reviews(queue, depot)
         sheet_path = os.path.join(out, "reviewed_simulated.csv")
-        sheet.to_csv(sheet_path, index=False)
+        _write_csv(sheet, sheet_path)
         ws.import_sheet(sheet_path, source="simulated reviewer")
         by_stratum = queue.table.set_index("row")["stratum"]
         for stratum, group in sheet.assign(stratum=sheet["row"].map(by_stratum)).groupby("stratum"):
@@ -577,8 +689,8 @@ def cmd_demo(args) -> int:
                 ws.set_name(stratum, normalize_tag(pd.Series(tags).mode().iloc[0]), source="simulated reviewer")
     with step("tally and report"):
         result = ws.tally()
-        result.categories.to_csv(os.path.join(ws_path, "tally.csv"), index=False)
-        result.slices.to_csv(os.path.join(ws_path, "verdicts.csv"), index=False)
+        _write_csv(result.categories, os.path.join(ws_path, "tally.csv"))
+        _write_csv(result.slices, os.path.join(ws_path, "verdicts.csv"))
         ws.save_artifact("report", {**ws.load_artifact("report", default={}), "simulated_review": True})
         report = _write_report(ws, found, tally_result=result, simulated=True)
     print()
@@ -596,7 +708,7 @@ def _add_scan_options(p):
     how.add_argument("--prediction", help="predicted label column (with --label)")
     how.add_argument("--errors", help="boolean/0-1 column, true for an error")
     how.add_argument("--loss", help="per-row loss column (with --threshold)")
-    how.add_argument("--threshold", type=float, help="a row is an error when loss > threshold")
+    how.add_argument("--threshold", type=_finite, help="a row is an error when loss > threshold")
     p.add_argument("--error-kind", default="all", choices=("all", "false_positive", "false_negative"))
     p.add_argument("--positive", help="the positive class for --error-kind")
     p.add_argument("--true-class", help="explain only errors on rows of this true class")
@@ -608,10 +720,10 @@ def _add_scan_options(p):
     p.add_argument("--images", metavar="FILE.npy", help="pixel arrays (n, h, w) for thumbnails")
     p.add_argument("--image-column", metavar="COL", help="column of image file paths for thumbnails")
     p.add_argument("--text-column", metavar="COL", help="free-text column to show and describe")
-    p.add_argument("--max-terms", type=int, default=3, help="most conditions per rule (default 3)")
-    p.add_argument("--min-rows", type=int, default=None, help="fewest rows per slice (default max(20, 0.5%%))")
-    p.add_argument("--fdr", type=float, default=0.05, help="false discovery rate (default 0.05)")
-    p.add_argument("--max-share", type=float, default=0.5,
+    p.add_argument("--max-terms", type=_int_at_least(1), default=3, help="most conditions per rule (default 3)")
+    p.add_argument("--min-rows", type=_int_at_least(1), default=None, help="fewest rows per slice (default max(20, 0.5%%))")
+    p.add_argument("--fdr", type=_fraction(), default=0.05, help="false discovery rate (default 0.05)")
+    p.add_argument("--max-share", type=_fraction(closed_high=True), default=0.5,
                    help="largest share of the rows a listed slice may hold (default 0.5)")
     p.add_argument("--no-label-items", action="store_true",
                    help="do not mine the --label column (by default per-class slices compete too)")
@@ -620,8 +732,8 @@ def _add_scan_options(p):
                    help="bitset (in memory, default), mlxtend (reference), dask (DATA: Parquet folder or glob)")
     p.add_argument("--scheduler", metavar="ADDRESS", help="with --engine dask: a running Dask scheduler "
                    "(default: a local cluster of 2 worker processes)")
-    p.add_argument("--seed", type=int, default=0, help="random_state (default 0)")
-    p.add_argument("--top", type=int, default=10, help="slices to print (default 10)")
+    p.add_argument("--seed", type=_int_at_least(0), default=0, help="random_state (default 0)")
+    p.add_argument("--top", type=_int_at_least(1), default=10, help="slices to print (default 10)")
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -641,11 +753,11 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser("queue", help="draw the review sample (WORKSPACE/queue.csv)",
                        epilog=EXAMPLES["queue"], formatter_class=fmt)
     p.add_argument("workspace")
-    p.add_argument("--budget", type=int, default=100, help="errors to queue (default 100)")
-    p.add_argument("--rest", type=int, default=20, help="of which from no slice (default 20)")
-    p.add_argument("--top", type=int, default=None, help="slices to queue as strata")
-    p.add_argument("--seed", type=int, default=0)
-    p.add_argument("--extend", type=int, default=0, metavar="N", help="add N more to the stored queue")
+    p.add_argument("--budget", type=_int_at_least(1), default=100, help="errors to queue (default 100)")
+    p.add_argument("--rest", type=_int_at_least(0), default=20, help="of which from no slice (default 20)")
+    p.add_argument("--top", type=_int_at_least(1), default=None, help="slices to queue as strata")
+    p.add_argument("--seed", type=_int_at_least(0), default=0)
+    p.add_argument("--extend", type=_int_at_least(0), default=0, metavar="N", help="add N more to the stored queue")
     p.add_argument("--force", action="store_true", help="replace a stored queue")
     p.set_defaults(func=cmd_queue)
 
@@ -655,13 +767,15 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("reviewed", help="the filled review sheet (CSV)")
     p.add_argument("--name", action="append", default=[], metavar='ID="NAME"',
                    help="name a slice's category, e.g. R1=\"smeared ink\" (repeatable)")
-    p.add_argument("--threshold", type=float, default=0.5, help="precision a verdict compares with")
+    p.add_argument("--threshold", type=_fraction(), default=0.5, help="precision a verdict compares with")
+    p.add_argument("--trust-order", action="store_true",
+                   help="import a sheet whose tags column looks sorted on its own (see read_reviews)")
     p.set_defaults(func=cmd_tally)
 
     p = sub.add_parser("review", help="review the queue in a local web page (127.0.0.1 only)",
                        epilog=EXAMPLES["review"], formatter_class=fmt)
     p.add_argument("workspace")
-    p.add_argument("--port", type=int, default=0, help="port on 127.0.0.1 (default: a free one)")
+    p.add_argument("--port", type=_port, default=0, help="port on 127.0.0.1 (default: a free one)")
     p.add_argument("--open", action="store_true", help="open the page in the default browser")
     p.add_argument("--images", default=None, help=".npy of pixel arrays, one per data row (default: the scan's)")
     p.add_argument("--image-column", default=None, help="stored column of image paths (default: the scan's)")
@@ -680,7 +794,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--id-column", metavar="COL", help="id column of the --after file (default: the scan's)")
     p.add_argument("--prediction-column", metavar="COL",
                    help="prediction column of the --after file (default: its only other column)")
-    p.add_argument("--top", type=int, default=15, help="lines to print (default 15)")
+    p.add_argument("--top", type=_int_at_least(1), default=15, help="lines to print (default 15)")
     p.set_defaults(func=cmd_compare)
 
     p = sub.add_parser("report", help="(re)write WORKSPACE/report.html", epilog=EXAMPLES["report"],
@@ -692,14 +806,16 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser("demo", help="the whole loop on the built-in depot data", epilog=EXAMPLES["demo"],
                        formatter_class=fmt)
     p.add_argument("--out", default="slicefind-demo", help="folder to write (default ./slicefind-demo)")
-    p.add_argument("--rows", type=int, default=6000, help="dev-set size (default 6000)")
-    p.add_argument("--seed", type=int, default=0)
+    p.add_argument("--rows", type=_int_at_least(100), default=6000, help="dev-set size (default 6000)")
+    p.add_argument("--seed", type=_int_at_least(0), default=0)
     p.set_defaults(func=cmd_demo)
     return parser
 
 
 def main(argv: Sequence[str] | None = None) -> int:
     """Entry point: returns the exit code (0 ok, 1 failure, 2 usage)."""
+    from slicefind.table import SlicefindError
+
     parser = build_parser()
     args = parser.parse_args(argv)
     try:
@@ -707,7 +823,13 @@ def main(argv: Sequence[str] | None = None) -> int:
     except KeyboardInterrupt:
         print("slicefind: interrupted", file=sys.stderr)
         return 1
-    except (ValueError, TypeError, OSError, KeyError) as error:
+    except BrokenPipeError:
+        # the reader went away (`slicefind tally ... | head`): everything was written before
+        # printing; stop quietly, and keep Python from complaining when it flushes stdout
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+        return 1
+    except (SlicefindError, ValueError, TypeError, OSError, KeyError) as error:
         if args.debug:
             raise
         message = str(error) if not isinstance(error, KeyError) else f"missing {error}"

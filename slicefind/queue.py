@@ -21,7 +21,7 @@ import numpy as np
 import pandas as pd
 
 from slicefind.slices import FoundSlices
-from slicefind.table import SlicefindTypeError, SlicefindValueError, _suggest
+from slicefind.table import SlicefindTypeError, SlicefindValueError, _suggest, neutralize_formulas
 
 __all__ = ["Queue", "build_queue", "REST", "MIN_PER_STRATUM", "QUEUE_COLUMNS", "SHEET_COLUMNS"]
 
@@ -162,7 +162,10 @@ class Queue:
         A reviewer marks ``reviewed`` (1/0, yes/no, x), types categories in ``tags``
         (several separated by ``;``) and anything else in ``note``. The file is UTF-8 with
         a byte-order mark, so spreadsheet programs read accents correctly, and is written
-        to a temporary file first, then moved into place.
+        to a temporary file first, then moved into place. A text cell that a spreadsheet
+        would run as a formula (starting with ``= + - @``, tab or CR) is written with a
+        leading ``'`` (`slicefind.table.neutralize_formulas`); `read_reviews` reads it
+        back unchanged.
 
         Parameters
         ----------
@@ -196,7 +199,7 @@ class Queue:
         fd, tmp = tempfile.mkstemp(prefix=".queue-", suffix=".csv", dir=folder)
         try:
             with os.fdopen(fd, "w", encoding="utf-8-sig", newline="") as handle:
-                sheet.to_csv(handle, index=False, lineterminator="\n")
+                neutralize_formulas(sheet).to_csv(handle, index=False, lineterminator="\n")
             os.replace(tmp, path)
         except BaseException:
             if os.path.exists(tmp):

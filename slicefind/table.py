@@ -16,6 +16,9 @@ __all__ = [
     "SlicefindError",
     "SlicefindValueError",
     "SlicefindTypeError",
+    "WorkspaceBusyError",
+    "neutralize_formulas",
+    "restore_formula_text",
     "EvalTable",
     "build_eval_table",
     "ERROR_KINDS",
@@ -45,6 +48,10 @@ class SlicefindValueError(SlicefindError, ValueError):
 
 class SlicefindTypeError(SlicefindError, TypeError):
     """A bad type: the message names the argument or column and the type."""
+
+
+class WorkspaceBusyError(SlicefindError):
+    """Another process held the workspace's database past the retries; nothing was written."""
 
 
 @dataclass(frozen=True, repr=False)
@@ -83,6 +90,44 @@ class EvalTable:
     def __repr__(self):
         return (f"EvalTable(n_rows={self.n_rows}, n_errors={self.n_errors}, "
                 f"mined={len(self.kinds)}, skipped={len(self.skipped)})")
+
+
+#: a cell a spreadsheet would run as a formula starts with one of these
+FORMULA_STARTS = ("=", "+", "-", "@", "\t", "\r")
+
+
+def neutralize_formulas(frame: pd.DataFrame) -> pd.DataFrame:
+    """A copy of `frame` for CSV export whose text cells cannot run as spreadsheet formulas.
+
+    A text cell starting with ``= + - @``, a tab or a carriage return gets a leading
+    ``'`` (the usual CSV-injection defence: the spreadsheet shows the text as text);
+    `restore_formula_text` takes it off again when the sheet is read back. Numbers and
+    other non-text cells are left alone, so ``-1.5`` in a numeric column stays a number.
+
+    Examples
+    --------
+    >>> out = neutralize_formulas(pd.DataFrame({"tags": ['=hyperlink("x")', "ok"], "n": [-1, 2]}))
+    >>> print(out.loc[0, "tags"], out.loc[1, "tags"], out["n"].tolist())
+    '=hyperlink("x") ok [-1, 2]
+    """
+    out = frame.copy()
+    for column in out.columns:
+        values = out[column]
+        if values.dtype != object and not pd.api.types.is_string_dtype(values.dtype):
+            continue
+        def guard(value):
+            if isinstance(value, str) and value.startswith(FORMULA_STARTS):
+                return "'" + value
+            return value
+        out[column] = values.map(guard)
+    return out
+
+
+def restore_formula_text(text: str) -> str:
+    """The cell text as it was before `neutralize_formulas` (``'=x`` -> ``=x``; other text unchanged)."""
+    if isinstance(text, str) and len(text) > 1 and text[0] == "'" and text[1:].startswith(FORMULA_STARTS):
+        return text[1:]
+    return text
 
 
 def _suggest(name, options) -> str:

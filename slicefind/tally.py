@@ -28,7 +28,7 @@ import pandas as pd
 from slicefind.queue import REST, Queue
 from slicefind.stats import (cochran_sample_size, stratified_interval, stratified_proportion,
                              wilson_interval_fpc)
-from slicefind.table import SlicefindTypeError, SlicefindValueError
+from slicefind.table import SlicefindTypeError, SlicefindValueError, restore_formula_text
 
 __all__ = ["Tally", "tally", "read_reviews", "normalize_tag", "UNTAGGED", "TRUE_WORDS",
            "FALSE_WORDS", "MAX_LISTED", "CATEGORY_COLUMNS", "SLICE_COLUMNS"]
@@ -219,7 +219,7 @@ def _raise_problems(source: str, problems: list[tuple[str, str]]) -> None:
     raise SlicefindValueError(msg)
 
 
-def read_reviews(reviewed, queue: Queue) -> pd.DataFrame:
+def read_reviews(reviewed, queue: Queue, *, trust_order: bool = False) -> pd.DataFrame:
     """Read and check a review sheet against the queue it was written from.
 
     Parameters
@@ -232,17 +232,26 @@ def read_reviews(reviewed, queue: Queue) -> pd.DataFrame:
         and an empty ``reviewed`` counts as reviewed. Tags are separated by ``;``.
         Lines with every cell empty are skipped. When the sheet has ``position``,
         ``stratum`` or ``id`` columns they must match the queue's (they catch a sheet
-        sorted on one column only).
+        sorted on one column only). A cell written with a leading ``'`` against formula
+        injection (``'=x``, see `Queue.to_csv`) is read as it was (``=x``).
     queue : Queue
         The queue the sheet belongs to.
+    trust_order : bool, default=False
+        Skip the check for a ``tags`` column sorted on its own. Without it a sheet is
+        refused when its tags, read down the sheet, are in sorted order with the blank
+        cells all at one end *and* the queue's random order within strata makes that
+        order unlikely (probability below 0.001): the usual trace of sorting one
+        column of a spreadsheet without the others, which puts tags on the wrong rows.
 
     Returns
     -------
     DataFrame
         One line per row mentioned, sorted by row: ``row``, ``reviewed`` (bool), ``tags``
         (normalised category names, sorted, joined by ``;``), ``note``, ``explicit``
-        (whether the line said anything: a reviewed mark, tags or a note), ``where``
-        (the sheet line or lines). Identical duplicate lines are merged.
+        (whether the line said anything: a reviewed mark, tags or a note), ``marked``
+        (whether it said something about the review itself: a reviewed mark or tags;
+        a line with a note only leaves the review as it was), ``where`` (the sheet line
+        or lines). Identical duplicate lines are merged.
 
     Raises
     ------
@@ -290,9 +299,11 @@ def read_reviews(reviewed, queue: Queue) -> pd.DataFrame:
               if name in col and name in table.columns]
 
     problems: list[tuple[str, str]] = []
-    parsed: dict[int, list[tuple[str, bool, tuple, str, bool]]] = {}
+    parsed: dict[int, list[tuple[str, bool, tuple, str, bool, bool]]] = {}
+    trace: list[tuple[str, int, str, str]] = []          # (where, row, stratum, tags) down the sheet
+    strata_of = table["stratum"].astype(str).tolist()
     for where, cells in records:
-        cells = [_cell(c) for c in cells]
+        cells = [restore_formula_text(_cell(c)) for c in cells]
         if len(cells) > len(header):
             if any(cells[len(header):]):
                 problems.append((where, f"has {len(cells)} cells but the header has {len(header)} "
@@ -343,29 +354,84 @@ def read_reviews(reviewed, queue: Queue) -> pd.DataFrame:
                               "';' (silence with warnings.simplefilter).", stacklevel=3)
         note = cells[col["note"]] if "note" in col else ""
         done = bool(mark) or (mark is None and bool(tags))
-        explicit = mark is not None or bool(tags) or bool(note)
-        parsed.setdefault(row, []).append((where, done, tags, note, explicit))
+        marked = mark is not None or bool(tags)
+        explicit = marked or bool(note)
+        trace.append((where, row, strata_of[line], ";".join(tags)))
+        parsed.setdefault(row, []).append((where, done, tags, note, explicit, marked))
 
+    if not trust_order and not problems:
+        problems.extend(_sorted_tags_problem(trace))
     out = []
     for row in sorted(parsed):
         entries = parsed[row]
-        states = {(done, tags, note) for _, done, tags, note, _ in entries}
+        states = {(done, tags, note) for _, done, tags, note, _, _ in entries}
         if len(states) > 1:
             described = "; ".join(
                 f"{w}: reviewed={'yes' if d else 'no'}, tags={';'.join(t)!r}"
-                + (f", note={n!r}" if n else "") for w, d, t, n, _ in entries)
+                + (f", note={n!r}" if n else "") for w, d, t, n, _, _ in entries)
             problems.append((", ".join(w for w, *_ in entries),
                              f"row {row} appears {len(entries)} times and the lines disagree ({described})"))
             continue
         done, tags, note = states.pop()
         out.append({"row": row, "reviewed": done, "tags": ";".join(tags), "note": note,
-                    "explicit": any(e for *_, e in entries),
+                    "explicit": any(e[4] for e in entries), "marked": any(e[5] for e in entries),
                     "where": ", ".join(w for w, *_ in entries)})
     if problems:
         _raise_problems(source, problems)
-    frame = pd.DataFrame(out, columns=["row", "reviewed", "tags", "note", "explicit", "where"])
-    return frame.astype({"row": np.int64, "reviewed": bool, "explicit": bool,
+    frame = pd.DataFrame(out, columns=["row", "reviewed", "tags", "note", "explicit", "marked", "where"])
+    return frame.astype({"row": np.int64, "reviewed": bool, "explicit": bool, "marked": bool,
                          "tags": "str", "note": "str", "where": "str"})
+
+
+#: a tags column in sorted order is refused when a random order gives it less often than this
+SORTED_TAGS_P = 0.001
+
+
+def _sorted_tags_problem(trace: list[tuple[str, int, str, str]]) -> list[tuple[str, str]]:
+    """The problem of a tags column sorted on its own, or nothing.
+
+    ``trace`` is (where, row, stratum, tags) down the sheet. The queue lists each
+    stratum's rows in random order, so the tagged lines of a stratum holding tags
+    ``a`` (``m_a`` times), ``b`` (``m_b``), ... come out in sorted order with
+    probability ``m_a! m_b! ... / k!``. The sheet is refused when its tags, blanks
+    all at one end, are sorted (up or down) and the product of those probabilities over
+    the strata, doubled for the two directions, is below `SORTED_TAGS_P`.
+    """
+    from math import lgamma, log
+
+    tagged = [i for i, (*_, tags) in enumerate(trace) if tags]
+    if len(tagged) < 4 or tagged[-1] - tagged[0] + 1 != len(tagged):
+        return []
+    if tagged[0] != 0 and tagged[-1] != len(trace) - 1:
+        return []                                        # blanks on both ends: not one sorted column
+    values = [trace[i][3] for i in tagged]
+    if len(set(values)) < 2:
+        return []
+    if values != sorted(values) and values != sorted(values, reverse=True):
+        return []
+    by_stratum: dict[str, list[str]] = {}
+    for i in tagged:
+        by_stratum.setdefault(trace[i][2], []).append(trace[i][3])
+    log_p = log(2.0)
+    for tags in by_stratum.values():
+        log_p += sum(lgamma(m + 1) for m in Counter(tags).values()) - lgamma(len(tags) + 1)
+    if log_p >= log(SORTED_TAGS_P):
+        return []
+    first, last_of = tagged[0], {}
+    for i in tagged:                                     # the first tag change inside a stratum
+        stratum, tags = trace[i][2], trace[i][3]
+        if last_of.get(stratum, tags) != tags:
+            first = i
+            break
+        last_of[stratum] = tags
+    where, row, stratum, tags = trace[first]
+    what = (f"the tags column is in sorted order on its own ({trace[tagged[0]][0]} to "
+            f"{trace[tagged[-1]][0]}: {values[0]!r} ... {values[-1]!r}, blank cells at one end), "
+            f"which the queue's random order gives with probability {np.exp(log_p):.1g}; it looks "
+            f"sorted without the other columns, which moves tags onto other rows (first in doubt: "
+            f"row {row}, stratum {stratum}, tags {tags!r}). Sort whole lines, or re-export the sheet; "
+            "if the order is right, pass trust_order=True (slicefind tally --trust-order)")
+    return [(where, what)]
 
 
 # --- estimates ---------------------------------------------------------------------------
@@ -421,7 +487,7 @@ def _more_needed(k: int, n: int, N: int, threshold: float, low: float, high: flo
 
 
 def tally(queue: Queue, reviewed, *, names: Mapping[str, str] | None = None,
-          threshold: float = 0.5, confidence_level: float = 0.95) -> Tally:
+          threshold: float = 0.5, confidence_level: float = 0.95, trust_order: bool = False) -> Tally:
     """Estimate each category's share of all errors and decide each candidate.
 
     A category's share of errors is estimated stratum by stratum (the stratified
@@ -454,6 +520,8 @@ def tally(queue: Queue, reviewed, *, names: Mapping[str, str] | None = None,
     threshold : float, default=0.5
         Precision that confirms a candidate.
     confidence_level : float, default=0.95
+    trust_order : bool, default=False
+        Passed to `read_reviews` (skip the check for a tags column sorted on its own).
 
     Returns
     -------
@@ -488,7 +556,7 @@ def tally(queue: Queue, reviewed, *, names: Mapping[str, str] | None = None,
     threshold = _check_level("threshold", threshold)
     confidence_level = _check_level("confidence_level", confidence_level)
     named = _check_names(names, queue)
-    reviews = read_reviews(reviewed, queue)
+    reviews = read_reviews(reviewed, queue, trust_order=trust_order)
 
     strata = list(queue.strata["stratum"])
     sizes = queue.strata["n_errors"].to_numpy(dtype=np.int64)

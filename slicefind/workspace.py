@@ -20,6 +20,7 @@ import os
 import shutil
 import sqlite3
 import threading
+import time
 import warnings
 from typing import Any, Callable, Iterable, Mapping, Sequence
 
@@ -28,13 +29,18 @@ import pandas as pd
 
 from slicefind.queue import REST, Queue, _assemble
 from slicefind.slices import FoundSlices
-from slicefind.table import EvalTable, SlicefindTypeError, SlicefindValueError, _suggest
-from slicefind.tally import Tally, normalize_tag, read_reviews, tally
+from slicefind.table import (EvalTable, SlicefindTypeError, SlicefindValueError, WorkspaceBusyError,
+                             _suggest)
+from slicefind.tally import UNTAGGED, Tally, normalize_tag, read_reviews, tally
 
 __all__ = ["Workspace", "data_fingerprint", "DB_NAME", "SCHEMA_VERSION", "MIGRATIONS"]
 
 #: the database file inside a workspace folder
 DB_NAME = "slicefind.sqlite"
+#: seconds a write waits for another process's lock (SQLite's busy timeout), per attempt
+BUSY_TIMEOUT = 30.0
+#: pauses between further attempts when the busy timeout ran out; then WorkspaceBusyError
+BUSY_RETRIES = (0.5, 1.0, 2.0)
 #: the schema this code writes; older files are migrated by MIGRATIONS, newer ones refused
 SCHEMA_VERSION = 1
 #: from-version -> function(connection) upgrading a schema by one version, inside a transaction
@@ -369,8 +375,10 @@ class Workspace:
     ----------
     path : str or os.PathLike
         The workspace folder.
-    timeout : float, default=30.0
-        Seconds a write waits for another process's write to finish.
+    timeout : float, optional
+        Seconds a write waits for another process's lock, per attempt (default
+        `BUSY_TIMEOUT`, 30); after ``len(BUSY_RETRIES) + 1`` attempts it raises
+        `slicefind.table.WorkspaceBusyError` and writes nothing.
     create : bool, default=True
         Create the folder and database when missing; with False a missing workspace is
         an error (for commands that need an existing one).
@@ -392,7 +400,8 @@ class Workspace:
     >>> ws.close()
     """
 
-    def __init__(self, path, *, timeout: float = 30.0, create: bool = True):
+    def __init__(self, path, *, timeout: float | None = None, create: bool = True):
+        timeout = BUSY_TIMEOUT if timeout is None else timeout
         if not isinstance(path, (str, os.PathLike)):
             raise SlicefindTypeError(f"path must be a folder path; got {type(path).__name__}.")
         self.path = os.fspath(path)
@@ -483,6 +492,26 @@ class Workspace:
             self._conn.execute("INSERT OR REPLACE INTO meta (key, value) VALUES (?, ?)",
                                (f"migrated_from_{version}", _now()))
 
+    def _begin(self) -> None:
+        """BEGIN IMMEDIATE, waiting out another process's lock; WorkspaceBusyError after the retries.
+
+        Each attempt waits SQLite's busy timeout; between attempts it pauses
+        `BUSY_RETRIES` seconds. Nothing has been written when it gives up.
+        """
+        for pause in (*BUSY_RETRIES, None):
+            try:
+                self._conn.execute("BEGIN IMMEDIATE")
+                return
+            except sqlite3.OperationalError as exc:
+                if "locked" not in str(exc) and "busy" not in str(exc):
+                    raise
+                if pause is None:
+                    msg = (f"another process held {self.db_path!r} for longer than "
+                           f"{len(BUSY_RETRIES) + 1} waits of the busy timeout; nothing was written. "
+                           "Close the other slicefind process (a review page, a tally) or try again.")
+                    raise WorkspaceBusyError(msg) from None
+                time.sleep(pause)
+
     def _transaction(self):
         """Context manager: BEGIN IMMEDIATE ... COMMIT (ROLLBACK on error), under the lock."""
         workspace = self
@@ -491,7 +520,7 @@ class Workspace:
             def __enter__(self):
                 workspace._lock.acquire()
                 try:
-                    workspace._conn.execute("BEGIN IMMEDIATE")
+                    workspace._begin()
                 except BaseException:
                     workspace._lock.release()
                     raise
@@ -860,15 +889,30 @@ class Workspace:
         return ";".join(cleaned)
 
     def import_sheet(self, sheet, *, source: str | None = None, batch_size: int = 500,
-                     scan_id: int | None = None) -> dict[str, int]:
+                     scan_id: int | None = None, trust_order: bool = False) -> dict[str, int]:
         """Import a filled-in review sheet (CSV path or DataFrame) as review events.
 
         The whole sheet is checked first (see `read_reviews`); on any problem nothing is
-        written. Then each line that says something (a reviewed mark, tags or a note) and
-        differs from the row's latest state is recorded, ``batch_size`` lines per
-        transaction: importing the same sheet twice changes nothing, and an import that is
-        interrupted keeps every batch committed and can simply be run again. The sheet's
-        values become the rows' latest state; earlier ones stay in `history`.
+        written. Then each line that says something and differs from the row's latest
+        state is recorded, all in one transaction: a sheet is in or out as a whole, even
+        when the process is killed halfway, and importing the same sheet twice changes
+        nothing. The sheet's values become the rows' latest state; earlier ones stay in
+        `history`.
+
+        A blank ``reviewed`` cell with blank ``tags`` leaves the row as it was (a note on
+        such a line is recorded, the review and its tags kept); ``reviewed = no``
+        withdraws a review.
+
+        Parameters
+        ----------
+        sheet : str, os.PathLike or DataFrame
+        source : str, optional
+            Recorded with each event (default ``sheet:PATH``).
+        batch_size : int, default=500
+            Lines per ``executemany`` call inside the one transaction.
+        scan_id : int, optional
+        trust_order : bool, default=False
+            Passed to `read_reviews`: skip the check for a ``tags`` column sorted on its own.
 
         Returns
         -------
@@ -880,7 +924,7 @@ class Workspace:
         if isinstance(batch_size, bool) or not isinstance(batch_size, (int, np.integer)) or batch_size < 1:
             raise SlicefindValueError(f"batch_size must be an integer >= 1; got {batch_size!r}.")
         queue = self.load_queue(scan_id)
-        reviews = read_reviews(sheet, queue)
+        reviews = read_reviews(sheet, queue, trust_order=trust_order)
         if source is None:
             source = f"sheet:{os.fspath(sheet)}" if isinstance(sheet, (str, os.PathLike)) else "sheet"
         latest = self._latest_reviews(scan_id)
@@ -888,26 +932,26 @@ class Workspace:
                      zip(latest["row"], latest["reviewed"], latest["tags"], latest["note"])}
         pending = []
         blank = unchanged = 0
-        for row, done, tags, note, explicit in zip(reviews["row"], reviews["reviewed"], reviews["tags"],
-                                                   reviews["note"], reviews["explicit"]):
+        for row, done, tags, note, explicit, marked in zip(
+                reviews["row"], reviews["reviewed"], reviews["tags"], reviews["note"],
+                reviews["explicit"], reviews["marked"]):
             if not explicit:
                 blank += 1
                 continue
-            state = (int(bool(done)), tags, note)
-            if before_of.get(int(row), (0, "", "")) == state:
+            before = before_of.get(int(row), (0, "", ""))
+            state = (int(bool(done)), tags, note) if marked else (before[0], before[1], note)
+            if before == state:
                 unchanged += 1
                 continue
             pending.append((scan_id, int(row), *state, source))
-        recorded = 0
-        for start in range(0, len(pending), int(batch_size)):
-            chunk = pending[start:start + int(batch_size)]
-            with self._transaction() as conn:
-                stamp = _now()
+        with self._transaction() as conn:
+            stamp = _now()
+            for start in range(0, len(pending), int(batch_size)):
                 conn.executemany(
                     "INSERT INTO reviews (scan_id, row, reviewed, tags, note, source, created_at) "
-                    "VALUES (?, ?, ?, ?, ?, ?, ?)", [c + (stamp,) for c in chunk])
-            recorded += len(chunk)
-        return {"lines": len(reviews), "recorded": recorded, "unchanged": unchanged, "blank": blank}
+                    "VALUES (?, ?, ?, ?, ?, ?, ?)",
+                    [c + (stamp,) for c in pending[start:start + int(batch_size)]])
+        return {"lines": len(reviews), "recorded": len(pending), "unchanged": unchanged, "blank": blank}
 
     def reviews(self, scan_id: int | None = None) -> pd.DataFrame:
         """The latest state of every row reviewed in a scan, ready for `tally` or `Queue.to_csv`.
@@ -937,7 +981,27 @@ class Workspace:
 
     def set_name(self, slice_id: str, name: str, *, source: str = "python",
                  scan_id: int | None = None) -> int | None:
-        """Name a slice (the category it stands for); an empty name clears it. Returns the event id."""
+        """Name a slice (the category it stands for); an empty name clears it. Returns the event id.
+
+        The name is checked first (`check_name`); nothing is written when it is refused.
+        """
+        scan_id = self._scan_id(scan_id)
+        name = self.check_name(slice_id, name, scan_id=scan_id)
+        with self._transaction() as conn:
+            old = conn.execute("SELECT name FROM names WHERE scan_id = ? AND slice_id = ? "
+                               "ORDER BY event_id DESC LIMIT 1", (scan_id, slice_id)).fetchone()
+            if (old[0] if old else "") == name:
+                return None
+            cursor = conn.execute("INSERT INTO names (scan_id, slice_id, name, source, created_at) "
+                                  "VALUES (?, ?, ?, ?, ?)", (scan_id, slice_id, name, source, _now()))
+            return int(cursor.lastrowid)
+
+    def check_name(self, slice_id: str, name: str, *, scan_id: int | None = None) -> str:
+        """The normalised name `set_name` would store, or a clear error (nothing is written).
+
+        ``slice_id`` must be a slice of the scan; ``name`` a string, not the reserved
+        ``(untagged)``; an empty name clears a name.
+        """
         scan_id = self._scan_id(scan_id)
         with self._lock:
             ids = [r[0] for r in self._conn.execute(
@@ -948,14 +1012,10 @@ class Workspace:
         if not isinstance(name, str):
             raise SlicefindTypeError(f"name must be a string; got {type(name).__name__}.")
         name = normalize_tag(name)
-        with self._transaction() as conn:
-            old = conn.execute("SELECT name FROM names WHERE scan_id = ? AND slice_id = ? "
-                               "ORDER BY event_id DESC LIMIT 1", (scan_id, slice_id)).fetchone()
-            if (old[0] if old else "") == name:
-                return None
-            cursor = conn.execute("INSERT INTO names (scan_id, slice_id, name, source, created_at) "
-                                  "VALUES (?, ?, ?, ?, ?)", (scan_id, slice_id, name, source, _now()))
-            return int(cursor.lastrowid)
+        if name == UNTAGGED:
+            raise SlicefindValueError(f"the name {UNTAGGED!r} (for {slice_id}) is reserved for reviewed "
+                                      "rows without tags; choose another name.")
+        return name
 
     def names(self, scan_id: int | None = None) -> dict[str, str]:
         """slice_id -> its latest (non-empty) name."""
@@ -986,4 +1046,4 @@ class Workspace:
             warnings.warn(msg, stacklevel=2)
         state = state[inside]
         return tally(queue, state[["row", "reviewed", "tags", "note"]], names=merged,
-                     threshold=threshold, confidence_level=confidence_level)
+                     threshold=threshold, confidence_level=confidence_level, trust_order=True)

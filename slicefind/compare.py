@@ -35,6 +35,10 @@ __all__ = ["Comparison", "compare", "match_after", "format_comparison", "COMPARE
 
 #: ``slice_id`` of the table's first line, the whole set of analysed rows
 OVERALL = "overall"
+#: what a category line made only of reviewed error rows measures (said in its description)
+KNOWN_ERRORS_NOTE = ("all wrong before by construction, so the line counts fixes of known errors, "
+                     "not the category's error rate")
+
 #: values of the table's ``kind`` column, in table order
 KINDS = ("overall", "slice", "category")
 #: an after-scan slice is new when no earlier slice overlaps it at least this much (Jaccard)
@@ -368,7 +372,7 @@ def _category_groups(found: FoundSlices, result, names: Mapping[str, str]):
                 text += f" and {outside} more reviewed row{'s' if outside != 1 else ''} tagged with it"
         else:
             text = (f"{tag_rows.size} reviewed error row{'s' if tag_rows.size != 1 else ''} tagged "
-                    "with it (wrong before by construction)")
+                    f"with it: {KNOWN_ERRORS_NOTE}")
         groups.append((category, text, rows, sids))
     return groups, named
 
@@ -532,8 +536,9 @@ def compare(found_or_workspace, before=None, after=None, *, data=None, categorie
         and names (`Workspace.tally`); with a FoundSlices pass the `Tally` of its review. A
         category that names slices (a given name, or the tag used most in a slice's
         stratum) covers those slices' rows; every category covers the reviewed rows tagged
-        with it, so a category without a slice covers only reviewed error rows (wrong
-        before by construction: its line says how many the fix repaired).
+        with it, so a category without a slice covers only reviewed error rows: all
+        wrong before by construction, its line counts fixes of known errors, not the
+        category's error rate (its description says so, and `format_comparison` marks it).
     fdr : float, default=0.05
         False discovery rate for ``improved``, ``regression`` and new slices.
     confidence_level : float, default=0.95
@@ -802,6 +807,7 @@ def format_comparison(cmp: Comparison, *, top: int = 15) -> str:
                          f"  {r['description']}")
     if len(rest):
         shown = rest.head(top)
+        known = False
         width = min(48, max(len("line"), max(len(_line_name(r)) for _, r in shown.iterrows())))
         lines.append("")
         lines.append(f"{'line':<{width}} {'rows':>7} {'before [95%]':>21} {'after [95%]':>21} "
@@ -812,11 +818,16 @@ def format_comparison(cmp: Comparison, *, top: int = 15) -> str:
             after = (f"{_pct(r['error_rate_after'])} [{_pct(r['error_rate_after_low'])}–"
                      f"{_pct(r['error_rate_after_high'])}]")
             flag = "REGRESSION" if r["regression"] else "better" if r["improved"] else ""
+            if _known_errors_only(r):
+                flag = (flag + " " if flag else "") + "(known errors*)"
+                known = True
             lines.append(f"{_line_name(r)[:width]:<{width}} {int(r['n_rows']):>7,} {before:>21} {after:>21} "
                          f"{100 * r['change']:>+7.1f} {int(r['n_fixed']):>6,} {int(r['n_broken']):>6,} "
                          f"{r['q_value']:>8.2g}  {flag}")
         if len(rest) > top:
             lines.append(f"... {len(rest) - top} more lines in the table (compare.csv)")
+        if known:
+            lines.append("* a category of reviewed error rows only: " + KNOWN_ERRORS_NOTE)
     new = cmp.new_slices
     if len(new):
         lines.append("")
@@ -831,6 +842,12 @@ def format_comparison(cmp: Comparison, *, top: int = 15) -> str:
         lines.append("")
         lines.append(f"after scan: {cmp.params['rescan']}; none is new or significantly worse.")
     return "\n".join(lines)
+
+
+def _known_errors_only(row) -> bool:
+    """A category line whose rows were all errors before: reviewed error rows, no slice."""
+    return (row["kind"] == "category" and not row["slice_id"]
+            and int(row["n_errors_before"]) == int(row["n_rows"]))
 
 
 def _line_name(row) -> str:

@@ -9,10 +9,22 @@ and reads only the `N_PROBE` cells nearest a query, about 6% of the rows.
 
 The centroids come from a seeded k-means run on one thread, every row is filed under its
 exact nearest centroid, and each query is answered on its own, so the same fit always
-gives the same neighbours, in memory and on any Dask partition. `benchmarks/bench_discovery.py placing` measures the agreement
-of the placed labels with the exact search.
+gives the same neighbours, in memory and on any Dask partition.
+`benchmarks/bench_discovery.py placing` measures the agreement of the placed labels
+with the exact search.
+
+faiss computes the distances of 20 or more queries at once with a BLAS matrix product,
+and which BLAS library a process calls depends on what it imported first (numpy's,
+scipy's or faiss's own); their float32 rounding differs, which reordered near-tied
+neighbours and changed the clusters between two processes given the same seed (a Dask
+driver that had not imported faiss before the bitset kernels, against the in-memory
+engine). Every search here runs faiss's own distance loops instead (`_own_loops`), the
+same in every process: 0.8 s more for the exact 20,000-row kNN graph, about 0.1 s more
+per 200,000 placed rows.
 """
 from __future__ import annotations
+
+import contextlib
 
 import numpy as np
 
@@ -26,6 +38,24 @@ EXACT_BELOW = 4_000
 ROWS_PER_CELL = 100
 #: cells read per query
 N_PROBE = 8
+
+
+#: faiss uses BLAS from this many queries on; raised above any batch by `_own_loops`
+_NO_BLAS = 2**31 - 1
+
+
+@contextlib.contextmanager
+def _own_loops():
+    """faiss's own distance loops instead of a BLAS product for the searches inside, so
+    the neighbours do not depend on which BLAS library the process loaded first."""
+    import faiss
+
+    before = faiss.cvar.distance_compute_blas_threshold
+    faiss.cvar.distance_compute_blas_threshold = _NO_BLAS
+    try:
+        yield
+    finally:
+        faiss.cvar.distance_compute_blas_threshold = before
 
 
 class NeighbourIndex:
@@ -64,29 +94,31 @@ class NeighbourIndex:
         x = np.ascontiguousarray(points, dtype=np.float32)
         n, d = x.shape
         self.k = int(min(n_neighbors, n))
-        if placing == "exact" or n < EXACT_BELOW:
-            self.index = faiss.IndexFlatL2(d)
-        else:
-            n_cells = max(16, n // ROWS_PER_CELL)
-            self._quantizer = faiss.IndexFlatL2(d)      # the index does not own it: keep it
-            self._quantizer.add(_centroids(x, n_cells))
-            self.index = faiss.IndexIVFFlat(self._quantizer, d, n_cells)
-            self.index.train(x)             # a quantizer holding n_cells points is not retrained
-            self.index.nprobe = min(N_PROBE, n_cells)
-        self.index.add(x)
+        with _own_loops():
+            if placing == "exact" or n < EXACT_BELOW:
+                self.index = faiss.IndexFlatL2(d)
+            else:
+                n_cells = max(16, n // ROWS_PER_CELL)
+                self._quantizer = faiss.IndexFlatL2(d)      # the index does not own it: keep it
+                self._quantizer.add(_centroids(x, n_cells))
+                self.index = faiss.IndexIVFFlat(self._quantizer, d, n_cells)
+                self.index.train(x)         # a quantizer holding n_cells points is not retrained
+                self.index.nprobe = min(N_PROBE, n_cells)
+            self.index.add(x)
         self.points = x
 
     def kneighbors(self, query: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         import faiss
 
         q = np.ascontiguousarray(query, dtype=np.float32)
-        squared, idx = self.index.search(q, self.k)
-        # a query whose probed cells hold fewer than k rows gets -1s: search it exactly
-        short = np.flatnonzero((idx < 0).any(axis=1))
-        if short.size:
-            flat = faiss.IndexFlatL2(q.shape[1])
-            flat.add(self.points)
-            squared[short], idx[short] = flat.search(q[short], self.k)
+        with _own_loops():
+            squared, idx = self.index.search(q, self.k)
+            # a query whose probed cells hold fewer than k rows gets -1s: search it exactly
+            short = np.flatnonzero((idx < 0).any(axis=1))
+            if short.size:
+                flat = faiss.IndexFlatL2(q.shape[1])
+                flat.add(self.points)
+                squared[short], idx[short] = flat.search(q[short], self.k)
         return np.sqrt(np.maximum(squared, 0.0)).astype(np.float64), idx.astype(np.int64)
 
 
@@ -101,7 +133,8 @@ def _centroids(x: np.ndarray, n_cells: int) -> np.ndarray:
     faiss.omp_set_num_threads(1)
     try:
         kmeans = faiss.Kmeans(x.shape[1], n_cells, niter=10, seed=0, verbose=False)
-        kmeans.train(x)
+        with _own_loops():
+            kmeans.train(x)
     finally:
         faiss.omp_set_num_threads(threads)
     return np.ascontiguousarray(kmeans.centroids, dtype=np.float32)

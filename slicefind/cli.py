@@ -268,12 +268,14 @@ def _print_slices(table: pd.DataFrame, n: int) -> None:
 
 def _print_confusions(found, n: int = 3) -> None:
     """The commonest confusions among all errors, one line."""
+    from slicefind.describe import value_text
+
     conf = found.confusions(top=n)
     if conf.empty:
         return
     names = f"{found.params.get('label_column', 'label')} -> {found.params.get('prediction_column', 'prediction')}"
-    parts = [f"{r.label} -> {r.prediction}: {r.n_errors:,} errors ({r.error_share:.1%} of errors, "
-             f"{r.class_rate:.1%} of {r.label})" for r in conf.itertuples()]
+    parts = [f"{value_text(r.label)} -> {value_text(r.prediction)}: {r.n_errors:,} errors ({r.error_share:.1%} of errors, "
+             f"{r.class_rate:.1%} of {value_text(r.label)})" for r in conf.itertuples()]
     print(f"commonest confusions ({names}): " + "; ".join(parts))
 
 

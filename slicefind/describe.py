@@ -53,8 +53,9 @@ def _percent(share: float) -> str:
     return f"{value}%"
 
 
-def _value_text(value) -> str:
-    """Readable text of a label value."""
+def value_text(value) -> str:
+    """Readable text of a label value: an integer-valued float as an integer (``6.0`` ->
+    ``6``, as a label column stored as floats holds its classes), else ``str``."""
     if isinstance(value, (float, np.floating)) and float(value).is_integer():
         return str(int(value))
     return str(value)
@@ -147,7 +148,7 @@ def _codes(table: EvalTable) -> _Codes:
 def _ranked(values, counts: np.ndarray, top: int) -> np.ndarray:
     """Indices of the `top` largest counts (ties by the values' text), counts > 0 only."""
     present = np.flatnonzero(counts > 0)
-    texts = np.array([_value_text(values[i]) for i in present], dtype=object)
+    texts = np.array([value_text(values[i]) for i in present], dtype=object)
     order = np.lexsort((texts, -counts[present]))
     return present[order[:top]]
 
@@ -197,7 +198,7 @@ def _confusion_counts(table: EvalTable, rows: np.ndarray, top: int):
     width = len(codes.prediction_values)
     pairs, counts = np.unique(codes.label[wrong].astype(np.int64) * width + codes.prediction[wrong],
                               return_counts=True)
-    texts = [f"{_value_text(codes.label_values[p // width])} -> {_value_text(codes.prediction_values[p % width])}"
+    texts = [f"{value_text(codes.label_values[p // width])} -> {value_text(codes.prediction_values[p % width])}"
              for p in pairs]
     order = np.lexsort((np.array(texts, dtype=object), -counts))[:top]
     return ([codes.label_values[pairs[i] // width] for i in order],
@@ -322,8 +323,8 @@ def _confusion_text(labels, predictions, counts, n_errors: int) -> str:
         return ""
     shares = np.asarray(counts, dtype=float) / n_errors
     if shares[0] >= 0.5:
-        return f"mostly {_value_text(labels[0])} -> {_value_text(predictions[0])}"
-    parts = [f"{_value_text(a)} -> {_value_text(b)} ({_percent(s)})"
+        return f"mostly {value_text(labels[0])} -> {value_text(predictions[0])}"
+    parts = [f"{value_text(a)} -> {value_text(b)} ({_percent(s)})"
              for a, b, s in list(zip(labels, predictions, shares))[:2] if s >= 0.2]
     return ", ".join(parts)
 
@@ -355,7 +356,7 @@ def describe_rows(table: EvalTable, rows: np.ndarray, *, items=None, exclude_tex
     if len(values):
         share, base = counts[0] / rows.size, overall[0] / table.n_rows
         if share >= SUMMARY_MIN_SHARE and share >= SUMMARY_MIN_LIFT * base:
-            parts.append(f"{_percent(share)} {label_name} = {_value_text(values[0])}")
+            parts.append(f"{_percent(share)} {label_name} = {value_text(values[0])}")
     n_errors = int(table.errors[rows].sum())
     labels, predictions, pair_counts, n_wrong = _confusion_counts(table, rows, 2)
     confusion = _confusion_text(labels, predictions, pair_counts, n_errors)

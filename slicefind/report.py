@@ -18,7 +18,7 @@ from typing import Any, Mapping, Sequence
 import numpy as np
 import pandas as pd
 
-from slicefind.describe import label_column, prediction_column
+from slicefind.describe import label_column, prediction_column, value_text
 
 __all__ = ["ReportInputs", "render_report", "write_report", "CAUTIONS", "MAX_SLICES_SHOWN",
            "PALETTE"]
@@ -319,6 +319,7 @@ def render_report(found, inputs: ReportInputs | None = None) -> str:
                      f"{html.escape(label_name)} → {html.escape(prediction_name)} pairs among all "
                      f"errors. A class that carries many errors is also a candidate slice "
                      f"(<code>{html.escape(label_name)} = …</code>) when the label is mined.</p>")
+        conf = conf.assign(label=conf["label"].map(value_text), prediction=conf["prediction"].map(value_text))
         parts.append(_table(conf, [("label", label_name, "text"), ("prediction", prediction_name, "text"),
                                    ("n_errors", "errors", "int"), ("error_share", "share of errors", "pct"),
                                    ("n_class_rows", f"rows with this {label_name}", "int"),
@@ -339,7 +340,7 @@ def render_report(found, inputs: ReportInputs | None = None) -> str:
             desc = inputs.descriptions.get(sid)
             if desc is None:
                 continue
-            conf = ", ".join(f"{r['label']} → {r['prediction']} ({int(r['n_errors'])})"
+            conf = ", ".join(f"{value_text(r['label'])} → {value_text(r['prediction'])} ({int(r['n_errors'])})"
                              for _, r in desc.confusions.head(3).iterrows()) if len(desc.confusions) else ""
             names = f"{label_column(found.eval_table)} → {prediction_column(found.eval_table)}"
             parts.append(f"<div class='slice' id='slice-{html.escape(sid)}'><b>{html.escape(sid)}</b> "

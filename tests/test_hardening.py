@@ -395,3 +395,22 @@ def test_a_category_of_tagged_errors_only_says_what_it_measures(ws, depot):
     shown = next(t for t in text.splitlines() if t.startswith("category 'loose thread'"))
     assert "(known errors*)" in shown
     assert "* a category of reviewed error rows only: " + KNOWN_ERRORS_NOTE in text
+
+
+def test_float_labels_print_as_their_classes(tmp_path, capsys):
+    """A label column stored as floats (3.0) prints its confusions as '3 -> 4', as the
+    review page's thumbnails do, not '3.0 -> 4.0'."""
+    frame = _dev_frame(1500)
+    frame["label"] = frame["label"].astype(float)
+    frame["pred"] = frame["pred"].astype(float)
+    path = tmp_path / "dev.csv"
+    frame.to_csv(path, index=False)
+    out = str(tmp_path / "ws")
+    assert 0 == main(["scan", str(path), "--label", "label", "--prediction", "pred", "--out", out])
+    line = next(t for t in capsys.readouterr().out.splitlines() if t.startswith("commonest confusions"))
+    assert ".0" not in line and " -> " in line
+    assert 0 == main(["report", out])
+    html = open(os.path.join(out, "report.html"), encoding="utf-8").read()
+    section = html[html.index("id='confusions'"):]
+    section = section[:section.index("</table>")]
+    assert ".0<" not in section and ".0 " not in section

@@ -16,17 +16,29 @@ POST     ``api/review``       ``{"row": 12, "toggle": "faded ink"}`` or ``{"row"
                               "reviewed": true, "tags": ["a", "b"]}``, optional ``"note"``
 POST     ``api/name``         ``{"slice_id": "R1", "name": "faded ink"}`` ("" clears it)
 POST     ``api/category``     ``{"name": "torn label"}``; ``"remove": true`` drops an unused one
-POST     ``api/import``       a filled-in sheet (CSV bytes), checked whole before anything is written
+POST     ``api/import``       a filled-in sheet (``text/csv``), checked whole before anything is written
 =======  ===================  ======================================================
 
 Each write is one `Workspace.record_review` or `Workspace.set_name` call (one small
-transaction): there is no save button and closing the tab loses nothing. A toggle is
-applied to the row's latest stored state under a lock, so two tabs toggling different
-tags of one row both take effect; otherwise the latest write wins and the workspace
-keeps the history. Bad requests get a 4xx answer and change nothing. Images are served
-only by row number, from the pixel array given or from the path the scan stored for that
-row, and only when the file lies inside the workspace, the data folder or a folder
-passed in ``image_folders``.
+transaction): there is no save button and closing the tab loses nothing. A write answers
+with the row's new state, the names, the categories and the version, not the tally: the
+page reads ``api/tally`` once its writes have settled, so a burst of key presses costs
+one tally. The tally and the page's fixed parts are cached until something changes. A
+toggle is applied to the row's latest stored state under a lock, so two tabs toggling
+different tags of one row both take effect; otherwise the latest write wins and the
+workspace keeps the history.
+
+Bad requests get a 4xx answer and change nothing. A write (any POST) is refused with 403
+when its ``Sec-Fetch-Site`` header says ``cross-site`` or ``same-site`` or its ``Origin``
+is not the page's own (``null`` included); requests without either header (scripts) are
+taken. The JSON routes take only ``application/json`` and ``api/import`` only
+``text/csv``, so a form on another site cannot write even with the token. JSON bodies
+are bounded in size (`MAX_JSON_BYTES`) and nesting (`MAX_JSON_DEPTH`). When another
+process holds the workspace's database past its retries the answer is 503 with
+``Retry-After``, and the page keeps the change on screen so it can be sent again.
+Images are served only by row number, from the pixel array given or from the path the
+scan stored for that row, and only when the file lies inside the workspace, the data
+folder or a folder passed in ``image_folders``.
 """
 from __future__ import annotations
 
@@ -54,14 +66,17 @@ import pandas as pd
 
 from slicefind.describe import label_column, prediction_column
 from slicefind.queue import QUEUE_COLUMNS, REST
-from slicefind.table import SlicefindError, SlicefindTypeError, SlicefindValueError
+from slicefind.table import (SlicefindError, SlicefindTypeError, SlicefindValueError,
+                             WorkspaceBusyError)
 from slicefind.tally import UNTAGGED, normalize_tag
 
-__all__ = ["ReviewServer", "make_server", "serve", "MAX_JSON_BYTES", "MAX_SHEET_BYTES",
-           "MAX_TAG_LENGTH", "IMAGE_TYPES", "CATEGORIES_ARTIFACT", "SOURCE"]
+__all__ = ["ReviewServer", "make_server", "serve", "MAX_JSON_BYTES", "MAX_JSON_DEPTH",
+           "MAX_SHEET_BYTES", "MAX_TAG_LENGTH", "IMAGE_TYPES", "CATEGORIES_ARTIFACT", "SOURCE"]
 
 #: largest JSON body a write may send
 MAX_JSON_BYTES = 64 * 1024
+#: deepest nesting of arrays and objects a JSON body may have (a write needs 2)
+MAX_JSON_DEPTH = 32
 #: largest review sheet the import accepts
 MAX_SHEET_BYTES = 32 * 1024 * 1024
 #: longest category name, candidate name or note accepted (characters)
@@ -79,6 +94,11 @@ _DRAIN_LIMIT = 1024 * 1024               # an oversized body up to this is read 
 _STATIC = {"review.css": "text/css; charset=utf-8",
            "review.js": "text/javascript; charset=utf-8"}
 _LOOPBACK = ("127.0.0.1", "localhost", "::1")
+_REQUEST_QUEUE = 256                     # connections the kernel holds before the server accepts them
+_BUSY_RETRY_S = 2                        # Retry-After of a 503 (workspace busy)
+#: what a client that leaves early raises; answered by dropping the connection, quietly
+_GONE = (BrokenPipeError, ConnectionResetError, ConnectionAbortedError, socket.timeout)
+_JSON_TOKENS = re.compile(rb'[\[\]{}"\\]')
 _N_EXEMPLARS = 6
 _SECURITY_HEADERS = {
     "Cache-Control": "no-store",
@@ -220,6 +240,38 @@ def _static(name: str) -> bytes:
     return (importlib.resources.files("slicefind") / "review_static" / name).read_bytes()
 
 
+def _nests_deeper(data: bytes, limit: int) -> bool:
+    """Whether JSON text nests ``[``/``{`` more than `limit` deep (brackets in strings skipped).
+
+    One pass over the brackets, quotes and backslashes, stopping at the first level past
+    `limit`; a text with at most `limit` brackets is not scanned. Assumes nothing of the
+    text's validity: whatever the parser accepts recurses no deeper than this counts.
+    """
+    if data.count(b"[") + data.count(b"{") <= limit:          # the usual body: no scan needed
+        return False
+    depth = 0
+    in_string, escaped_at = False, -1
+    for match in _JSON_TOKENS.finditer(data):
+        at = match.start()
+        if at == escaped_at:
+            continue
+        char = data[at]
+        if in_string:
+            if char == 0x5C:                                    # backslash: the next byte is escaped
+                escaped_at = at + 1
+            elif char == 0x22:
+                in_string = False
+        elif char == 0x22:
+            in_string = True
+        elif char in (0x5B, 0x7B):
+            depth += 1
+            if depth > limit:
+                return True
+        elif char in (0x5D, 0x7D):
+            depth -= 1
+    return False
+
+
 # --- the application (no HTTP in here) ------------------------------------------------------
 
 
@@ -239,7 +291,10 @@ class _ReviewApp:
 
     def _load(self, images, image_column, text_column, image_folders, data_folder) -> None:
         """Read the scan, queue and artifacts; check the display options against them."""
-        self.lock = threading.RLock()
+        self.lock = threading.RLock()               # serialises writes (read-modify-write of a row)
+        self._cache_lock = threading.Lock()         # one tally / layout computed at a time
+        self._tally_cache: tuple[str, dict] | None = None     # (version, tally JSON)
+        self._layout_cache: tuple[Any, tuple[list, list]] | None = None   # (queue, layout)
         self.found = self.ws.load_found()
         self.scan_id = int(self.found.extras["scan_id"])  # the page reviews this scan, even if a newer one comes
         self.queue = self.ws.load_queue(self.scan_id)   # raises, with advice, when there is none
@@ -372,8 +427,24 @@ class _ReviewApp:
                 "note": str(last["note"]), "updated_at": str(last["created_at"]),
                 "source": str(last["source"])}
 
-    def tally(self) -> dict:
-        """The live tally as JSON: categories, slices, summary, and any warning."""
+    def tally(self, version: str | None = None) -> dict:
+        """The live tally as JSON: categories, slices, summary, and any warning.
+
+        Cached by `version` (read now when not given): requests at one version, such as
+        many tabs loading at once, compute it once.
+        """
+        if version is None:
+            version = self.version()
+        with self._cache_lock:
+            cached = self._tally_cache
+            if cached is not None and cached[0] == version:
+                return cached[1]
+            out = self._compute_tally()
+            self._tally_cache = (version, out)
+            return out
+
+    def _compute_tally(self) -> dict:
+        """`Workspace.tally` of the page's scan as JSON, its warnings as notes."""
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always")
             result = self.ws.tally(scan_id=self.scan_id)
@@ -398,19 +469,25 @@ class _ReviewApp:
         digest.update(json.dumps([reviews["row"].tolist(), reviews["updated_at"].tolist(),
                                   reviews["tags"].tolist(), reviews["note"].tolist()]).encode())
         digest.update(json.dumps([sorted(names.items()), categories]).encode())
-        digest.update(f"{len(self._current_queue())} {self._latest_scan()}".encode())
+        queue = self._current_queue()
+        digest.update(json.dumps([queue.table["row"].tolist(), queue.strata["stratum"].tolist(),
+                                  self._latest_scan()]).encode())
         return reviews, names, categories, digest.hexdigest()[:16]
 
     def version(self) -> str:
         """Changes whenever reviews, notes, names, categories or the queue change (any tab)."""
         return self._current()[3]
 
-    def state(self) -> dict:
-        """Everything the page needs to draw itself."""
-        with self.lock:
-            queue = self._current_queue()
-            reviews, names, categories, version = self._current()
-            reviews = reviews.set_index("row")
+    def _layout(self, queue) -> tuple[list[dict], list[dict]]:
+        """The parts of the page that change only with the queue: rows and strata, unreviewed.
+
+        Cached for the queue object `Workspace.load_queue` returns (the same object until
+        another queue is saved). Callers copy the dicts before adding to them.
+        """
+        with self._cache_lock:
+            cached = self._layout_cache
+            if cached is not None and cached[0] is queue:
+                return cached[1]
             extra = [c for c in queue.table.columns if c not in QUEUE_COLUMNS]
             rows = []
             for line in _records(queue.table):
@@ -424,34 +501,49 @@ class _ReviewApp:
                         "text": info.get("text"), "has_image": info["has_image"]}
                 if self.image_column:
                     item["image_path"] = line.get(self.image_column)
-                if row in reviews.index:
-                    r = reviews.loc[row]
-                    item.update(reviewed=bool(r["reviewed"]), tags=_tags_list(r["tags"]),
-                                note=str(r["note"]), updated_at=str(r["updated_at"]))
-                else:
-                    item.update(reviewed=False, tags=[], note="", updated_at=None)
                 rows.append(item)
             strata = []
             for s in _records(queue.strata):
-                sid = s["stratum"]
-                s["name"] = names.get(sid, "") if sid != REST else ""
-                s.update(self._descriptions.get(sid, {"summary": "", "exemplars": []}))
+                s.update(self._descriptions.get(s["stratum"], {"summary": "", "exemplars": []}))
                 strata.append(s)
-            return {"workspace": os.path.abspath(self.ws.path), "rows": rows, "strata": strata,
-                    "names": names, "categories": categories,
-                    "reserved": UNTAGGED, "tally": self.tally(), "version": version,
-                    "n_rows": queue.n_rows, "n_errors": queue.n_errors,
-                    "error_rate": queue.error_rate, "source": SOURCE,
-                    "label_name": label_column(self.found.eval_table),
-                    "prediction_name": prediction_column(self.found.eval_table),
-                    "image_kind": ("pixels" if self.images is not None
-                                   else "files" if self.image_column else None)}
+            self._layout_cache = (queue, (rows, strata))
+            return rows, strata
+
+    def state(self) -> dict:
+        """Everything the page needs to draw itself."""
+        queue = self._current_queue()
+        reviews, names, categories, version = self._current()
+        fixed_rows, fixed_strata = self._layout(queue)
+        latest = {int(r): (bool(d), t, n, u) for r, d, t, n, u in zip(
+            reviews["row"], reviews["reviewed"], reviews["tags"], reviews["note"], reviews["updated_at"])}
+        rows = []
+        for fixed in fixed_rows:
+            item = dict(fixed)
+            done = latest.get(item["row"])
+            if done is None:
+                item.update(reviewed=False, tags=[], note="", updated_at=None)
+            else:
+                item.update(reviewed=done[0], tags=_tags_list(done[1]), note=str(done[2]),
+                            updated_at=str(done[3]))
+            rows.append(item)
+        strata = [{**s, "name": names.get(s["stratum"], "") if s["stratum"] != REST else ""}
+                  for s in fixed_strata]
+        return {"workspace": os.path.abspath(self.ws.path), "rows": rows, "strata": strata,
+                "names": names, "categories": categories,
+                "reserved": UNTAGGED, "tally": self.tally(version), "version": version,
+                "n_rows": queue.n_rows, "n_errors": queue.n_errors,
+                "error_rate": queue.error_rate, "source": SOURCE,
+                "label_name": label_column(self.found.eval_table),
+                "prediction_name": prediction_column(self.found.eval_table),
+                "image_kind": ("pixels" if self.images is not None
+                               else "files" if self.image_column else None)}
 
     # -- writes ----------------------------------------------------------------------------
 
     def _after_write(self, row: int | None = None) -> dict:
+        """What the page redraws after a write; the tally it reads from ``api/tally`` later."""
         _, names, categories, version = self._current()
-        out = {"tally": self.tally(), "names": names, "categories": categories, "version": version}
+        out = {"names": names, "categories": categories, "version": version}
         if row is not None:
             out["row"] = {"row": row, **self._row_state(row)}
         return out
@@ -522,6 +614,8 @@ class _ReviewApp:
             try:
                 self.ws.record_review(row, reviewed=bool(new_reviewed), tags=sorted(current),
                                       note=new_note, source=SOURCE, scan_id=self.scan_id)
+            except WorkspaceBusyError:
+                raise
             except SlicefindError as exc:
                 raise _HTTPError(400, str(exc)) from None
             self._remember(sorted(current))
@@ -541,6 +635,8 @@ class _ReviewApp:
         with self.lock:
             try:
                 self.ws.set_name(sid, name, source=SOURCE, scan_id=self.scan_id)
+            except WorkspaceBusyError:
+                raise
             except SlicefindError as exc:
                 raise _HTTPError(400, str(exc)) from None
             return self._after_write()
@@ -571,7 +667,11 @@ class _ReviewApp:
             return self._after_write()
 
     def import_sheet(self, data: bytes, filename: str) -> dict:
-        """Import a filled-in sheet; on any problem nothing is written and the lines are listed."""
+        """Import a filled-in sheet; on any problem nothing is written and the lines are listed.
+
+        The upload is written to a temporary file for `Workspace.import_sheet`; messages
+        name the uploaded file (`filename`) instead of that temporary path.
+        """
         folder = tempfile.mkdtemp(prefix="slicefind-import-")
         try:
             path = os.path.join(folder, "sheet.csv")
@@ -581,8 +681,11 @@ class _ReviewApp:
                 try:
                     counts = self.ws.import_sheet(path, source=f"{SOURCE}:import:{filename}",
                                                   scan_id=self.scan_id)
+                except WorkspaceBusyError:
+                    raise
                 except SlicefindError as exc:
-                    raise _HTTPError(400, str(exc)) from None
+                    message = str(exc).replace(path, filename).replace(folder, "")
+                    raise _HTTPError(400, message) from None
                 reviews = self.ws.reviews(self.scan_id)
                 self._remember(t for text in reviews["tags"] for t in _tags_list(text))
                 out = self._after_write()
@@ -644,17 +747,21 @@ class _ReviewApp:
 
 
 class _Handler(http.server.BaseHTTPRequestHandler):
-    """Checks the host and token, routes, and turns `_HTTPError` into a 4xx answer."""
+    """Checks the host, token and (for writes) origin, routes, and turns errors into answers."""
 
     server_version = "slicefind-review"
     sys_version = ""
     protocol_version = "HTTP/1.1"
     timeout = 30
+    # headers and body go out as two writes: without this, Nagle's algorithm holds the body
+    # until the client's delayed ACK (about 40 ms on every answer of a keep-alive connection)
+    disable_nagle_algorithm = True
 
     # set on a subclass per server
     app: _ReviewApp
     token: str
-    hosts: frozenset
+    hosts: frozenset                 # accepted Host headers, "127.0.0.1:PORT" ...
+    origins: frozenset               # accepted Origin headers, "http://127.0.0.1:PORT" ...
     quiet: bool = True
 
     def log_message(self, format, *args):            # noqa: A002 (the stdlib's name)
@@ -696,6 +803,50 @@ class _Handler(http.server.BaseHTTPRequestHandler):
             raise _HTTPError(404, "no such page.")
         return parts[2:]
 
+    def _check_origin(self) -> None:
+        """Refuse (403) a write another site's page sent: by Sec-Fetch-Site, or a foreign Origin.
+
+        A request with neither header (a script, curl) passes. The body is drained first
+        so the connection stays usable.
+        """
+        site = (self.headers.get("Sec-Fetch-Site") or "").strip().lower()
+        foreign = [o for o in self.headers.get_all("Origin", ())
+                   if o.strip().lower() not in self.origins]
+        if site in ("cross-site", "same-site"):
+            why = f"Sec-Fetch-Site is {site!r}"
+        elif foreign:
+            why = f"Origin {foreign[0][:100]!r} is not this server's"
+        else:
+            return
+        self._drain()
+        raise _HTTPError(403, f"write refused: {why}; only the review page itself (open the URL "
+                              "the server printed) or a script without an Origin header may write.")
+
+    def _kind(self) -> str:
+        """The media type of the body, lower case, parameters dropped."""
+        return (self.headers.get("Content-Type") or "").split(";")[0].strip().lower()
+
+    def _require_kind(self, kind: str, what: str) -> None:
+        """Refuse (415) a body of another media type, draining it; forms cannot send `kind`."""
+        if self._kind() != kind:
+            self._drain()
+            sent = self.headers.get("Content-Type")
+            got = repr(sent[:100]) if sent else "no Content-Type"
+            raise _HTTPError(415, f"send {what} as Content-Type {kind}; got {got}.")
+
+    def _drain(self) -> None:
+        """Read and drop a refused request's body (up to 1 MB) so the connection stays usable.
+
+        A body that cannot be drained (chunked, unsized, larger) closes the connection.
+        """
+        length = self.headers.get("Content-Length")
+        if (self.headers.get("Transfer-Encoding") or length is None or not length.isdigit()
+                or int(length) > _DRAIN_LIMIT):
+            self.close_connection = True
+            return
+        self.rfile.read(int(length))
+        self._consumed = True
+
     def _body(self, limit: int) -> bytes:
         if self.headers.get("Transfer-Encoding"):
             self.close_connection = True
@@ -715,32 +866,48 @@ class _Handler(http.server.BaseHTTPRequestHandler):
         return data
 
     def _json_body(self) -> dict:
+        self._require_kind("application/json", "the body")
         data = self._body(MAX_JSON_BYTES)
-        kind = (self.headers.get("Content-Type") or "").split(";")[0].strip().lower()
-        if kind != "application/json":
-            raise _HTTPError(415, "send the body as application/json.")
+        if _nests_deeper(data, MAX_JSON_DEPTH):
+            raise _HTTPError(400, f"the body nests arrays or objects more than {MAX_JSON_DEPTH} "
+                                  "levels deep; a write is one flat JSON object.")
         try:
             body = json.loads(data.decode("utf-8"))
         except (UnicodeDecodeError, json.JSONDecodeError) as exc:
             raise _HTTPError(400, f"the body is not valid JSON ({exc}).") from None
+        except RecursionError:                          # cannot pass the depth check; kept as a guard
+            raise _HTTPError(400, "the body nests arrays or objects too deep.") from None
         if not isinstance(body, dict):
             raise _HTTPError(400, "the body must be a JSON object.")
         return body
 
+    def _refuse(self, exc: _HTTPError) -> None:
+        if self.command not in ("GET", "HEAD") and not self._consumed:
+            self.close_connection = True              # an unread body would poison the next request
+        self._fail(exc)
+
     def _guarded(self, action):
+        """Run `action`; answer its refusals, a busy workspace (503) and bugs (500).
+
+        A client that went away (broken pipe, reset, timeout), even while an error is
+        being answered, only closes the connection: nothing is printed.
+        """
         self._consumed = False
         try:
-            action()
-        except (_HTTPError, SlicefindError) as exc:
-            if not isinstance(exc, _HTTPError):
-                exc = _HTTPError(400, str(exc))
-            if self.command not in ("GET", "HEAD") and not self._consumed:
-                self.close_connection = True              # an unread body would poison the next request
-            self._fail(exc)
-        except (BrokenPipeError, ConnectionResetError, socket.timeout):
+            try:
+                action()
+            except _GONE:
+                raise
+            except WorkspaceBusyError as exc:
+                self._refuse(_HTTPError(503, str(exc), {"Retry-After": str(_BUSY_RETRY_S)}))
+            except (_HTTPError, SlicefindError) as exc:
+                self._refuse(exc if isinstance(exc, _HTTPError) else _HTTPError(400, str(exc)))
+            except Exception as exc:                      # a bug: say so, keep serving
+                if self.command not in ("GET", "HEAD") and not self._consumed:
+                    self.close_connection = True
+                self._json(500, {"error": f"internal error: {type(exc).__name__}: {exc}", "status": 500})
+        except _GONE:
             self.close_connection = True
-        except Exception as exc:                          # a bug: say so, keep serving
-            self._json(500, {"error": f"internal error: {type(exc).__name__}: {exc}", "status": 500})
 
     # -- methods ---------------------------------------------------------------------------
 
@@ -777,11 +944,9 @@ class _Handler(http.server.BaseHTTPRequestHandler):
         elif parts == ["api", "state"]:
             self._json(200, app.state())
         elif parts == ["api", "tally"]:
-            with app.lock:
-                self._json(200, app.tally())
+            self._json(200, app.tally())
         elif parts == ["api", "version"]:
-            with app.lock:
-                self._json(200, {"version": app.version()})
+            self._json(200, {"version": app.version()})
         elif parts == ["api", "export"]:
             self._send(200, app.export_sheet(), "text/csv; charset=utf-8",
                        {"Content-Disposition": 'attachment; filename="queue-reviewed.csv"'})
@@ -793,8 +958,10 @@ class _Handler(http.server.BaseHTTPRequestHandler):
 
     def _post(self):
         parts = self._route()
+        self._check_origin()
         app = self.app
         if parts == ["api", "import"]:
+            self._require_kind("text/csv", "the review sheet")
             data = self._body(MAX_SHEET_BYTES)
             name = urllib.parse.unquote(self.headers.get("X-Sheet-Name") or "sheet.csv")[:200]
             self._json(200, app.import_sheet(data, name))
@@ -807,8 +974,19 @@ class _Handler(http.server.BaseHTTPRequestHandler):
 
 
 class _Server(http.server.ThreadingHTTPServer):
+    """One thread per connection; a deep listen queue; quiet about clients that left early."""
+
     daemon_threads = True
     allow_reuse_address = False
+    request_queue_size = _REQUEST_QUEUE          # the listen backlog: many tabs or clients at once
+
+    def handle_error(self, request, client_address):
+        """Drop a connection the client closed or let time out; print other errors in one line."""
+        exc = sys.exc_info()[1]
+        if isinstance(exc, _GONE):
+            return
+        sys.stderr.write(f"review: error answering a request from {client_address[0]}: "
+                         f"{type(exc).__name__}: {exc}\n")
 
 
 def _family(host: str) -> int:
@@ -928,13 +1106,14 @@ def make_server(workspace_path, *, host: str = "127.0.0.1", port: int = 0, image
     server_class = type("_BoundServer", (_Server,), {"address_family": _family(bind)})
     try:
         handler = type("_BoundHandler", (_Handler,), {"app": app, "token": token, "quiet": quiet,
-                                                     "hosts": frozenset()})
+                                                     "hosts": frozenset(), "origins": frozenset()})
         httpd = server_class((bind, port), handler)
     except OSError as exc:
         app.close()
         raise SlicefindValueError(f"cannot listen on {bind}:{port} ({exc}); try port=0.") from None
     bound = httpd.server_address[1]
     handler.hosts = frozenset({f"127.0.0.1:{bound}", f"localhost:{bound}", f"[::1]:{bound}"})
+    handler.origins = frozenset(f"http://{h}" for h in handler.hosts)
     shown = f"[{bind}]" if ":" in bind else bind
     return ReviewServer(url=f"http://{shown}:{bound}/{token}/", token=token, httpd=httpd, _app=app)
 

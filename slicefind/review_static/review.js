@@ -14,6 +14,11 @@
     pending: 0,
     chain: Promise.resolve(),
     timers: new Map(),      // debounced text saves: key -> {timer, path, body}
+    unsaved: new Set(),     // rows whose last change the server could not write (busy workspace)
+    tallyDue: false,        // a write landed since the tally was last read
+    tallyTimer: null,
+    tallyReading: 0,
+    tallyTicket: 0,         // only the latest tally read is drawn
   };
 
   // ---- small helpers ------------------------------------------------------------------
@@ -47,16 +52,18 @@
   const show = (x) => (x === null || x === undefined || x === "" ? "—" : String(x));
   const verdictOf = (sid) => (app.state.tally.slices.find((s) => s.slice_id === sid) || null);
 
-  function say(message, isError = false) {
+  // A sticky message stays until the next one replaces it.
+  function say(message, isError = false, sticky = false) {
     const box = $("#status");
     box.textContent = message;
     box.className = `status visible${isError ? " error" : ""}`;
     clearTimeout(say.timer);
-    say.timer = setTimeout(() => { box.className = "status"; }, isError ? 9000 : 2200);
+    if (!sticky) say.timer = setTimeout(() => { box.className = "status"; }, isError ? 9000 : 2200);
   }
 
   function markPending() {
-    document.body.dataset.pending = String(app.pending + app.timers.size);
+    document.body.dataset.pending = String(app.pending + app.timers.size
+      + (app.tallyDue ? 1 : 0) + app.tallyReading);
   }
 
   // ---- the current example ------------------------------------------------------------
@@ -100,6 +107,7 @@
   // ---- reading state ------------------------------------------------------------------
 
   function ingest(state) {
+    app.tallyTicket += 1;   // a tally read already under way is older than this state
     app.state = state;
     app.version = state.version;
     app.rows = new Map(state.rows.map((r) => [r.row, r]));
@@ -140,6 +148,15 @@
 
   // ---- writing ------------------------------------------------------------------------
 
+  // A refused write: the server's message, its status and (for 503) when to try again.
+  class WriteError extends Error {
+    constructor(message, status, retryAfter) {
+      super(message);
+      this.status = status;
+      this.retryAfter = retryAfter;
+    }
+  }
+
   function post(path, body) {
     return fetch(path, {
       method: "POST",
@@ -147,19 +164,39 @@
       body: JSON.stringify(body),
     }).then(async (answer) => {
       const reply = await answer.json().catch(() => ({ error: `${answer.status} ${answer.statusText}` }));
-      if (!answer.ok) throw new Error(reply.error || String(answer.status));
+      if (!answer.ok) {
+        throw new WriteError(reply.error || String(answer.status), answer.status,
+          Math.max(1, Number(answer.headers.get("Retry-After")) || 2));
+      }
       return reply;
     });
   }
 
+  // The workspace was busy (503): nothing was written. The change stays on the page: a row
+  // is marked "not saved" (do it again to retry), a text field keeps its text and is sent again.
+  function keepUnsaved(body, err, retry) {
+    const again = retry ? `the text is kept and sent again in ${err.retryAfter} s`
+      : "the change is kept on this page; do it again to retry";
+    say(`not saved: ${err.message} (${again})`, true, true);
+    if (retry) retry(err.retryAfter * 1000);
+    else if (body.row !== undefined) { app.unsaved.add(body.row); redrawCard(body.row); }
+  }
+
   // Writes go one after another, so answers arrive in the order the keys were pressed.
-  function send(path, body, done) {
+  // `retry(delay)`, when given, sends the change again after a busy answer.
+  function send(path, body, done, retry) {
     app.pending += 1;
     markPending();
     const job = app.chain
       .then(() => post(path, body))
-      .then((reply) => { applyReply(reply); if (done) say(done(reply)); return reply; },
+      .then((reply) => {
+        if (!retry && body.row !== undefined) app.unsaved.delete(body.row);   // a key's change landed
+        applyReply(reply);
+        if (done) say(done(reply));
+        return reply;
+      },
         async (err) => {
+          if (err.status === 503) { keepUnsaved(body, err, retry); return null; }
           say(`not saved: ${err.message}`, true);
           try { await refresh(); } catch (e) { /* the status line already says it */ }
           return null;
@@ -184,7 +221,39 @@
     clearTimeout(job.timer);
     app.timers.delete(key);
     markPending();
-    return send(job.path, job.body, () => "saved");
+    return send(job.path, job.body, () => "saved", (delay) => {
+      if (!app.timers.has(key)) sendLater(key, job.path, job.body, delay);   // unless newer text waits
+    });
+  }
+
+  // The tally is read once the writes have settled, so a burst of keys costs one tally.
+  function tallyLater(delay = 120) {
+    app.tallyDue = true;
+    markPending();
+    clearTimeout(app.tallyTimer);
+    app.tallyTimer = setTimeout(readTally, delay);
+  }
+
+  async function readTally() {
+    if (app.pending) { app.tallyTimer = setTimeout(readTally, 120); return; }
+    app.tallyDue = false;
+    app.tallyReading += 1;
+    markPending();
+    const ticket = ++app.tallyTicket;
+    try {
+      const tallied = await fetchJSON("api/tally");
+      if (ticket === app.tallyTicket) {
+        app.state.tally = tallied;
+        renderStrata();
+        renderCandidateStatus();
+        renderTally();
+      }
+    } catch (err) {
+      say(`cannot read the tally: ${err.message}`, true);
+    } finally {
+      app.tallyReading -= 1;
+      markPending();
+    }
   }
 
   function flushAll(onUnload = false) {
@@ -220,6 +289,7 @@
       st.names = reply.names;
     }
     if (reply.tally) st.tally = reply.tally;
+    else tallyLater();
     if (reply.version) app.version = reply.version;
     if (redraw) renderCandidate();
     else if (reply.row) { redrawCard(reply.row.row); renderCandidateStatus(); }
@@ -408,7 +478,9 @@
     const named = stratum().name;
     const tagged = new Set(item.tags);
     const state = !item.reviewed ? "open" : (item.tags.length ? "tagged" : "plain");
-    const stateText = { open: "not reviewed", tagged: "reviewed", plain: "reviewed · no category" }[state];
+    const unsaved = app.unsaved.has(row);
+    const stateText = unsaved ? "last change not saved"
+      : { open: "not reviewed", tagged: "reviewed", plain: "reviewed · no category" }[state];
     const toggles = cats.map((c, k) => el("button", {
       type: "button", class: `tag${c === named ? " named" : ""}`,
       "aria-pressed": tagged.has(c) ? "true" : "false",
@@ -426,8 +498,10 @@
       el("span", { class: "fact" }, el("span", { class: "k", text: k }), el("span", { text: show(v) })));
     const pictured = Boolean(item.has_image);
     return el("article", {
-      class: `card ${state}${pictured ? " pictured" : ""}${index === app.i ? " current" : ""}`, id: `card-${row}`,
-      data: { row: String(row), reviewed: item.reviewed ? "1" : "0", tags: item.tags.join(";") },
+      class: `card ${state}${pictured ? " pictured" : ""}${index === app.i ? " current" : ""}${unsaved ? " unsaved" : ""}`,
+      id: `card-${row}`,
+      data: { row: String(row), reviewed: item.reviewed ? "1" : "0", tags: item.tags.join(";"),
+        ...(unsaved ? { unsaved: "1" } : {}) },
       onclick: () => select(index),
     },
     pictured ? el("div", { class: "card-visual" }, visual(item, true)) : null,
@@ -435,7 +509,7 @@
       el("div", { class: "card-head" },
         el("span", { class: "pos", text: `#${item.position}` }),
         el("span", { class: "ident", text: item.id != null ? `${item.id} · row ${row}` : `row ${row}` }),
-        el("span", { class: `state ${state}`, text: stateText })),
+        el("span", { class: `state ${unsaved ? "unsaved" : state}`, text: stateText })),
       pictured ? null : visual(item, true),
       truth(item),
       meta.length ? el("div", { class: "facts" }, meta) : null,
@@ -626,9 +700,9 @@
       const input = $("#new-category");
       const name = input.value.trim();
       if (!name) { input.blur(); return; }
-      addCategory(name);
       input.value = "";
       input.blur();
+      addCategory(name).then((reply) => { if (!reply && !input.value) input.value = name; });   // refused: kept
     });
     $("#import").addEventListener("click", () => $("#import-file").click());
     $("#import-file").addEventListener("change", (ev) => importSheet(ev.target.files[0]));

@@ -13,7 +13,6 @@ import csv
 import dataclasses
 import gzip
 import os
-import re
 import sys
 import time
 from typing import TYPE_CHECKING, Sequence
@@ -136,9 +135,15 @@ def _write_csv(frame: pd.DataFrame, path: str) -> None:
     neutralize_formulas(frame).to_csv(path, index=False)
 
 
+def _write_tally_files(result, folder: str) -> None:
+    """tally.csv (categories) and verdicts.csv (candidates) of a Tally, in the workspace folder."""
+    _write_csv(result.categories, os.path.join(folder, "tally.csv"))
+    _write_csv(result.slices, os.path.join(folder, "verdicts.csv"))
+
+
 _DELIMITERS = (",", ";", "\t", "|")
 #: ISO 8601 dates and timestamps, as pandas and most loggers write them
-_ISO_STAMP = re.compile(r"\d{4}-\d{2}-\d{2}([ T]\d{2}:\d{2}(:\d{2}(\.\d+)?)?)?(Z|[+-]\d{2}:?\d{2})?")
+_ISO_STAMP = r"\d{4}-\d{2}-\d{2}([ T]\d{2}:\d{2}(:\d{2}(\.\d+)?)?)?(Z|[+-]\d{2}:?\d{2})?"
 
 
 def _sniff_delimiter(path: str, default: str) -> str:
@@ -163,7 +168,7 @@ def _parse_timestamps(frame: pd.DataFrame) -> pd.DataFrame:
         present = series.dropna()
         if present.empty or not all(isinstance(v, str) for v in present.head(1000)):
             continue
-        if not present.astype(str).str.fullmatch(_ISO_STAMP.pattern).all():
+        if not present.astype(str).str.fullmatch(_ISO_STAMP).all():
             continue
         try:
             stamps = pd.to_datetime(series, format="ISO8601")
@@ -517,8 +522,7 @@ def cmd_tally(args) -> int:
     for slice_id, name in names.items():
         ws.set_name(slice_id, name, source="cli")
     result = ws.tally(threshold=args.threshold)
-    _write_csv(result.categories, os.path.join(ws.path, "tally.csv"))
-    _write_csv(result.slices, os.path.join(ws.path, "verdicts.csv"))
+    _write_tally_files(result, ws.path)
     report = _write_report(ws, ws.load_found(), tally_result=result)
     print(f"imported {counts['recorded']} new review events ({counts['unchanged']} unchanged, "
           f"{counts['blank']} blank lines; a blank line leaves its row as it was, "
@@ -691,8 +695,7 @@ def cmd_demo(args) -> int:
                 ws.set_name(stratum, normalize_tag(pd.Series(tags).mode().iloc[0]), source="simulated reviewer")
     with step("tally and report"):
         result = ws.tally()
-        _write_csv(result.categories, os.path.join(ws_path, "tally.csv"))
-        _write_csv(result.slices, os.path.join(ws_path, "verdicts.csv"))
+        _write_tally_files(result, ws_path)
         ws.save_artifact("report", {**ws.load_artifact("report", default={}), "simulated_review": True})
         report = _write_report(ws, found, tally_result=result, simulated=True)
     print()

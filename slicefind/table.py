@@ -113,14 +113,13 @@ def neutralize_formulas(frame: pd.DataFrame) -> pd.DataFrame:
     out = frame.copy()
     for column in out.columns:
         values = out[column]
-        if values.dtype != object and not pd.api.types.is_string_dtype(values.dtype):
-            continue
-        def guard(value):
-            if isinstance(value, str) and value.startswith(FORMULA_STARTS):
-                return "'" + value
-            return value
-        out[column] = values.map(guard)
+        if values.dtype == object or pd.api.types.is_string_dtype(values.dtype):
+            out[column] = values.map(_guard_formula)
     return out
+
+
+def _guard_formula(value):
+    return "'" + value if isinstance(value, str) and value.startswith(FORMULA_STARTS) else value
 
 
 def restore_formula_text(text: str) -> str:

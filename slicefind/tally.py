@@ -20,6 +20,7 @@ import unicodedata
 import warnings
 from collections import Counter
 from dataclasses import dataclass, field
+from math import lgamma, log
 from typing import Any, Mapping
 
 import numpy as np
@@ -397,8 +398,6 @@ def _sorted_tags_problem(trace: list[tuple[str, int, str, str]]) -> list[tuple[s
     all at one end, are sorted (up or down) and the product of those probabilities over
     the strata, doubled for the two directions, is below `SORTED_TAGS_P`.
     """
-    from math import lgamma, log
-
     tagged = [i for i, (*_, tags) in enumerate(trace) if tags]
     if len(tagged) < 4 or tagged[-1] - tagged[0] + 1 != len(tagged):
         return []

@@ -15,12 +15,10 @@ import pandas as pd
 import pytest
 
 import slicefind.workspace as wsmod
-from review_helpers import depot_found
 from slicefind.cli import _read_table, main
-from slicefind.queue import build_queue
 from slicefind.table import WorkspaceBusyError, neutralize_formulas, restore_formula_text
 from slicefind.tally import read_reviews
-from slicefind.workspace import DB_NAME, Workspace, data_fingerprint
+from slicefind.workspace import DB_NAME, Workspace
 
 
 def _dev_frame(n=1500, seed=0):
@@ -41,22 +39,6 @@ def _dev_frame(n=1500, seed=0):
 def _digest(path):
     with open(path, "rb") as handle:
         return hashlib.sha256(handle.read()).hexdigest()
-
-
-@pytest.fixture(scope="module")
-def depot():
-    return depot_found()
-
-
-@pytest.fixture()
-def ws(tmp_path, depot):
-    """A workspace holding the depot scan and a 40-row queue."""
-    frame, found = depot
-    workspace = Workspace(tmp_path / "ws")
-    workspace.save_scan(found, data_fingerprint=data_fingerprint(frame))
-    workspace.save_queue(build_queue(workspace.load_found(), budget=40, rest=10))
-    yield workspace
-    workspace.close()
 
 
 def _counts(path):

@@ -12,27 +12,11 @@ import pandas as pd
 import pytest
 
 import slicefind.workspace as wsmod
-from review_helpers import depot_found, strata_found
+from review_helpers import strata_found
 from slicefind.queue import build_queue
 from slicefind.table import SlicefindTypeError, SlicefindValueError
 from slicefind.tally import tally
 from slicefind.workspace import DB_NAME, SCHEMA_VERSION, Workspace, data_fingerprint
-
-
-@pytest.fixture(scope="module")
-def depot():
-    return depot_found()
-
-
-@pytest.fixture()
-def ws(tmp_path, depot):
-    """A workspace holding the depot scan (with its image paths) and a 40-row queue."""
-    frame, found = depot
-    workspace = Workspace(tmp_path / "ws")
-    workspace.save_scan(found, data_fingerprint=data_fingerprint(frame), show=("label_image",))
-    workspace.save_queue(build_queue(workspace.load_found(), budget=40, show=("label_image",)))
-    yield workspace
-    workspace.close()
 
 
 def _raw(ws):

@@ -136,9 +136,11 @@ def _write_csv(frame: pd.DataFrame, path: str) -> None:
 
 
 def _write_tally_files(result, folder: str) -> None:
-    """tally.csv (categories) and verdicts.csv (candidates) of a Tally, in the workspace folder."""
+    """tally.csv (categories), verdicts.csv (candidates) and relabel.csv (rows tagged as a
+    wrong label; only the header when none is) of a Tally, in the workspace folder."""
     _write_csv(result.categories, os.path.join(folder, "tally.csv"))
     _write_csv(result.slices, os.path.join(folder, "verdicts.csv"))
+    _write_csv(result.relabel, os.path.join(folder, "relabel.csv"))
 
 
 _DELIMITERS = (",", ";", "\t", "|")
@@ -496,21 +498,67 @@ def _parse_names(pairs: Sequence[str]) -> dict[str, str]:
     return names
 
 
-def _print_tally(result) -> None:
+def _parse_together(groups: Sequence[str]) -> list[list[str]]:
+    """--together values ('A,B') as lists of category names."""
+    from slicefind.table import SlicefindValueError
+
+    out = []
+    for group in groups:
+        names = [n.strip().strip('"').strip("'") for n in group.split(",")]
+        if len(names) < 2 or not all(names):
+            raise SlicefindValueError(f"--together {group!r} must name two or more categories "
+                                      "separated by commas, e.g. --together \"faded ink,torn label\".")
+        out.append(names)
+    return out
+
+
+def _range(low: float, high: float, digits: int = 1) -> str:
+    return f"[{low:.{digits}%}–{high:.{digits}%}]"
+
+
+def _print_tally(result, together: Sequence[Sequence[str]] = ()) -> None:
+    import textwrap
+
+    from slicefind.decision import decision_paragraphs
+    from slicefind.tally import WRONG_LABEL
+
     cats = result.categories
     print(f"{'category':<28} {'tagged':>6} {'share of errors [95%]':>26} {'error rate if fixed':>20}")
     for _, c in cats.iterrows():
-        share = f"{c['share']:.1%} [{c['share_low']:.1%}–{c['share_high']:.1%}]"
+        share = f"{c['share']:.1%} {_range(c['share_low'], c['share_high'])}"
         print(f"{str(c['category'])[:28]:<28} {int(c['n_tagged']):>6} {share:>26} {c['headroom']:>20.2%}")
+    summary = result.summary
+    if summary.get("n_wrong_label"):
+        print(f"{WRONG_LABEL}: error rate with the labels corrected "
+              f"{summary['corrected_error_rate']:.2%} "
+              f"{_range(summary['corrected_error_rate_low'], summary['corrected_error_rate_high'], 2)}, "
+              f"against {summary['error_rate']:.2%} measured; rows in relabel.csv")
     if len(result.slices):
         print()
         print(f"{'slice':<6} {'name':<24} {'reviewed':>8} {'precision [95%]':>22} {'verdict':>10} {'more':>5}")
         for _, s in result.slices.iterrows():
             prec = ("" if pd.isna(s["precision"]) else
-                    f"{s['precision']:.0%} [{s['precision_low']:.0%}–{s['precision_high']:.0%}]")
+                    f"{s['precision']:.0%} {_range(s['precision_low'], s['precision_high'], 0)}")
             more = "" if pd.isna(s["more_needed"]) else str(int(s["more_needed"]))
             print(f"{s['slice_id']:<6} {str(s['name'])[:24]:<24} {int(s['n_reviewed']):>8} {prec:>22} "
                   f"{s['verdict']:>10} {more:>5}")
+    groups = [result.combined(g) for g in together]
+    pairs = result.pairs(top=4) if len(result.user_categories()) >= 2 else None
+    if groups or (pairs is not None and len(pairs)):
+        print()
+        print(f"{'fixed together':<40} {'share of errors [95%]':>24} {'overlap':>8} {'error rate if fixed':>20}")
+        lines = [(g.as_dict()) for g in groups]
+        if pairs is not None:
+            lines += [{**p, "categories": f"{p['category_a']} + {p['category_b']}"}
+                      for p in pairs.to_dict("records")]
+        for line in lines:
+            share = f"{line['share']:.1%} {_range(line['share_low'], line['share_high'])}"
+            fixed = f"{line['headroom']:.2%} {_range(line['headroom_low'], line['headroom_high'], 2)}"
+            print(f"{str(line['categories'])[:40]:<40} {share:>24} {line['overlap']:>8.1%} {fixed:>20}")
+    print()
+    print("In plain words:")
+    for paragraph in decision_paragraphs(result):
+        print(textwrap.fill(paragraph, width=100, initial_indent="- ", subsequent_indent="  "))
 
 
 def cmd_tally(args) -> int:
@@ -518,6 +566,12 @@ def cmd_tally(args) -> int:
 
     ws = Workspace(args.workspace, create=False)
     names = {sid: ws.check_name(sid, name) for sid, name in _parse_names(args.name).items()}
+    together = _parse_together(args.together)
+    if together:                  # check the groups against the tally the import would give
+        preview = ws.tally(threshold=args.threshold, names=names,
+                           reviews=ws.preview_import(args.reviewed, trust_order=args.trust_order))
+        for group in together:
+            preview.check_categories(group, argument="--together")
     counts = ws.import_sheet(args.reviewed, trust_order=args.trust_order)   # checked first, one transaction
     for slice_id, name in names.items():
         ws.set_name(slice_id, name, source="cli")
@@ -527,8 +581,8 @@ def cmd_tally(args) -> int:
     print(f"imported {counts['recorded']} new review events ({counts['unchanged']} unchanged, "
           f"{counts['blank']} blank lines; a blank line leaves its row as it was, "
           "reviewed = no withdraws a review)")
-    _print_tally(result)
-    print(f"tally.csv, verdicts.csv and {report} written")
+    _print_tally(result, together)
+    print(f"tally.csv, verdicts.csv, relabel.csv and {report} written")
     return 0
 
 
@@ -773,6 +827,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--name", action="append", default=[], metavar='ID="NAME"',
                    help="name a slice's category, e.g. R1=\"smeared ink\" (repeatable)")
     p.add_argument("--threshold", type=_fraction(), default=0.5, help="precision a verdict compares with")
+    p.add_argument("--together", action="append", default=[], metavar='"A,B"',
+                   help="categories fixed together: the share of errors tagged with any of them "
+                        "(repeatable)")
     p.add_argument("--trust-order", action="store_true",
                    help="import a sheet whose tags column looks sorted on its own (see read_reviews)")
     p.set_defaults(func=cmd_tally)

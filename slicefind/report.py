@@ -380,6 +380,7 @@ def render_report(found, inputs: ReportInputs | None = None) -> str:
                          "<th>reviewed</th><th>precision</th><th>95% interval</th><th>verdict</th>"
                          "<th>more to review</th></tr></thead><tbody>" + "".join(rows_html) +
                          "</tbody></table>")
+        parts.append(_decision_section(result))
 
     if inputs.compare is not None:
         parts.append(_compare_section(inputs.compare))
@@ -390,6 +391,38 @@ def render_report(found, inputs: ReportInputs | None = None) -> str:
     params = ", ".join(f"{k}={v}" for k, v in found.params.items() if k not in ("exclude",))
     parts.append(f"<p class='small'>Options: {html.escape(params)}</p>")
     parts.append(_CHECK_SCRIPT + "</body></html>")
+    return "".join(parts)
+
+
+def _decision_section(result) -> str:
+    """Wrong labels, pairs of categories fixed together, and the plain-words paragraphs."""
+    from slicefind.decision import decision_paragraphs
+    from slicefind.tally import WRONG_LABEL
+
+    parts = []
+    summary = result.summary
+    if summary.get("n_wrong_label"):
+        parts.append(
+            f"<h2 id='wrong-labels'>Wrong labels</h2><p>{int(summary['n_wrong_label'])} reviewed errors "
+            f"were tagged <b>{html.escape(WRONG_LABEL)}</b>: {_fmt(summary['wrong_label_share'], 'pct')} of "
+            f"errors ({_fmt(summary['wrong_label_share_low'], 'pct')}–"
+            f"{_fmt(summary['wrong_label_share_high'], 'pct')}). With them corrected the error rate would be "
+            f"{_fmt(summary['corrected_error_rate'], 'pct')} ({_fmt(summary['corrected_error_rate_low'], 'pct')}–"
+            f"{_fmt(summary['corrected_error_rate_high'], 'pct')}) instead of {_fmt(summary['error_rate'], 'pct')}. "
+            "The rows are listed in relabel.csv. A review of errors does not see wrong labels the "
+            "model agreed with.</p>")
+    if len(result.user_categories()) >= 2:
+        pairs = result.pairs(top=4)
+        parts.append("<h2 id='together'>Categories fixed together</h2><p class='small'>One error may "
+                     "carry several tags, so fixing two categories removes the errors tagged with "
+                     "either: the union, not the sum of their shares.</p>")
+        parts.append(_table(pairs, [("category_a", "category", "text"), ("category_b", "and", "text"),
+                                    ("share", "share of errors", "pct"), ("share_low", "low", "pct"),
+                                    ("share_high", "high", "pct"), ("sum_of_shares", "sum of shares", "pct"),
+                                    ("overlap", "overlap", "pct"),
+                                    ("headroom", "error rate if both fixed", "pct")], "pairs"))
+    parts.append("<h2 id='plain-words'>In plain words</h2>" +
+                 "".join(f"<p>{html.escape(p)}</p>" for p in decision_paragraphs(result)))
     return "".join(parts)
 
 

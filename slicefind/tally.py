@@ -19,7 +19,7 @@ import re
 import unicodedata
 import warnings
 from collections import Counter
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, fields
 from math import lgamma, log
 from typing import Any, Mapping
 
@@ -29,13 +29,18 @@ import pandas as pd
 from slicefind.queue import REST, Queue
 from slicefind.stats import (cochran_sample_size, stratified_interval, stratified_proportion,
                              wilson_interval_fpc)
-from slicefind.table import SlicefindTypeError, SlicefindValueError, restore_formula_text
+from slicefind.table import SlicefindTypeError, SlicefindValueError, _suggest, restore_formula_text
 
-__all__ = ["Tally", "tally", "read_reviews", "normalize_tag", "UNTAGGED", "TRUE_WORDS",
-           "FALSE_WORDS", "MAX_LISTED", "CATEGORY_COLUMNS", "SLICE_COLUMNS"]
+__all__ = ["Tally", "Combined", "tally", "read_reviews", "normalize_tag", "UNTAGGED",
+           "WRONG_LABEL", "TRUE_WORDS", "FALSE_WORDS", "MAX_LISTED", "CATEGORY_COLUMNS",
+           "SLICE_COLUMNS", "PAIR_COLUMNS", "RELABEL_COLUMNS"]
 
 #: the category row for reviewed errors that carry no tag: what no category explains yet
 UNTAGGED = "(untagged)"
+#: the reserved tag for an error row whose dev-set label is itself wrong (the model may be
+#: right); typed as ``(wrong label)`` or plainly ``wrong label``
+WRONG_LABEL = "(wrong label)"
+_WRONG_LABEL_SPELLINGS = (WRONG_LABEL, "wrong label")
 #: accepted spellings of "reviewed" (compared after stripping and lower-casing)
 TRUE_WORDS = ("1", "1.0", "yes", "y", "true", "t", "x", "✓", "✔")
 #: accepted spellings of "not reviewed"; an empty cell is "not reviewed" too
@@ -44,7 +49,14 @@ FALSE_WORDS = ("0", "0.0", "no", "n", "false", "f")
 MAX_LISTED = 20
 CATEGORY_COLUMNS = ("category", "n_tagged", "share", "share_low", "share_high", "share_se",
                     "est_errors", "est_errors_low", "est_errors_high", "headroom",
-                    "headroom_low", "headroom_high", "slices")
+                    "headroom_low", "headroom_high", "headroom_corrected",
+                    "headroom_corrected_low", "headroom_corrected_high", "slices")
+#: columns of `Tally.pairs`
+PAIR_COLUMNS = ("category_a", "category_b", "n_tagged", "share", "share_low", "share_high",
+                "overlap", "overlap_low", "overlap_high", "sum_of_shares", "headroom",
+                "headroom_low", "headroom_high")
+#: columns of `Tally.relabel` (and the workspace's relabel.csv)
+RELABEL_COLUMNS = ("row", "stratum", "id", "label", "prediction", "tags", "note")
 SLICE_COLUMNS = ("slice_id", "description", "name", "name_source", "n_errors", "n_reviewed",
                  "n_named", "precision", "precision_low", "precision_high", "verdict",
                  "more_needed")
@@ -55,13 +67,100 @@ _SPACES = re.compile(r"\s+")
 def normalize_tag(text: str) -> str:
     """A category name as compared and shown: NFC, trimmed, single spaces, lower case.
 
+    ``wrong label``, with or without parentheses, is the reserved tag `WRONG_LABEL`.
+
     Examples
     --------
     >>> normalize_tag("  Faded   Ink ")
     'faded ink'
+    >>> normalize_tag("Wrong  Label")
+    '(wrong label)'
     """
-    text = unicodedata.normalize("NFC", str(text))
-    return _SPACES.sub(" ", text).strip().lower()
+    text = _SPACES.sub(" ", unicodedata.normalize("NFC", str(text))).strip().lower()
+    return WRONG_LABEL if text in _WRONG_LABEL_SPELLINGS else text
+
+
+@dataclass(frozen=True)
+class _Design:
+    """The stratified design of a tally: strata sizes, reviews per stratum, each reviewed row's tags."""
+
+    sizes: np.ndarray              # N_h, error rows per stratum
+    n_reviewed: np.ndarray         # n_h
+    row_stratum: np.ndarray        # per reviewed row: its stratum's index
+    tag_sets: tuple                # per reviewed row: its tags (a tuple of names)
+    error_rate: float
+    confidence_level: float
+
+    def counts(self, has) -> np.ndarray:
+        """k_h: reviewed rows per stratum whose tag set satisfies ``has(tags)``."""
+        k = np.zeros(len(self.sizes), dtype=np.int64)
+        for tags, h in zip(self.tag_sets, self.row_stratum):
+            if has(tags):
+                k[h] += 1
+        return k
+
+    def share(self, k: np.ndarray) -> tuple[float, float, float, float]:
+        """Stratified share of all errors for per-stratum counts ``k``: estimate, low, high, se."""
+        est, low, high = stratified_interval(k, self.n_reviewed, self.sizes,
+                                             confidence_level=self.confidence_level)
+        seen = self.n_reviewed > 0
+        if seen.any():
+            total = int(self.sizes.sum())
+            _, v = stratified_proportion(k[seen], self.n_reviewed[seen], self.sizes[seen],
+                                         population=total)
+            se = float(np.sqrt(v)) / (float(self.sizes[seen].sum()) / total)
+        else:
+            se = float("nan")
+        return est, low, high, se
+
+
+@dataclass(frozen=True, repr=False)
+class Combined:
+    """Categories fixed together: the share of errors tagged with any of them (`Tally.combined`).
+
+    Attributes
+    ----------
+    categories : tuple of str
+    n_tagged : int
+        Reviewed rows tagged with at least one of them.
+    share, share_low, share_high : float
+        Share of all errors tagged with any of them (the union), with its interval.
+    overlap, overlap_low, overlap_high : float
+        Share of all errors tagged with every one of them, with its interval.
+    sum_of_shares : float
+        The categories' shares added up: what the union would be without overlap.
+    headroom, headroom_low, headroom_high : float
+        Error rate if all of them were fixed, ``error_rate * (1 - share)``.
+    headroom_corrected, headroom_corrected_low, headroom_corrected_high : float
+        The same against corrected labels: ``error_rate * (1 - share of errors tagged with
+        any of them or WRONG_LABEL)``.
+    """
+
+    categories: tuple
+    n_tagged: int
+    share: float
+    share_low: float
+    share_high: float
+    overlap: float
+    overlap_low: float
+    overlap_high: float
+    sum_of_shares: float
+    headroom: float
+    headroom_low: float
+    headroom_high: float
+    headroom_corrected: float
+    headroom_corrected_low: float
+    headroom_corrected_high: float
+
+    def as_dict(self) -> dict[str, Any]:
+        """The attributes as a plain dict (``categories`` joined by ``" + "``)."""
+        out = {f.name: getattr(self, f.name) for f in fields(self)}
+        out["categories"] = " + ".join(self.categories)
+        return out
+
+    def __repr__(self):
+        return (f"Combined({' + '.join(self.categories)}: share={self.share:.3f} "
+                f"[{self.share_low:.3f}, {self.share_high:.3f}])")
 
 
 @dataclass(frozen=True, repr=False)
@@ -71,12 +170,15 @@ class Tally:
     Attributes
     ----------
     categories : DataFrame
-        One line per category (largest share first), then ``(untagged)``: ``category``,
-        ``n_tagged`` (reviewed rows carrying it), ``share`` of all errors with its interval
-        (``share_low``, ``share_high``) and standard error, ``est_errors`` (share times the
-        errors) with its interval, ``headroom`` (error rate if the category were fixed,
-        ``error_rate * (1 - share)``) with its interval, and ``slices`` (candidates named
-        after it).
+        One line per category (largest share first), then `WRONG_LABEL` when it was used,
+        then ``(untagged)``: ``category``, ``n_tagged`` (reviewed rows carrying it),
+        ``share`` of all errors with its interval (``share_low``, ``share_high``) and
+        standard error, ``est_errors`` (share times the errors) with its interval,
+        ``headroom`` (error rate if the category were fixed, ``error_rate * (1 - share)``)
+        with its interval, ``headroom_corrected`` (the same against corrected labels: the
+        errors tagged with it or `WRONG_LABEL` taken away) with its interval, and
+        ``slices`` (candidates named after it). On the `WRONG_LABEL` line, ``headroom`` is
+        the error rate once the wrong labels are corrected.
     slices : DataFrame
         One line per queued candidate: ``slice_id``, ``description``, ``name`` and where it
         came from (``names`` or ``tags``), ``n_errors`` in its stratum, ``n_reviewed``,
@@ -93,7 +195,14 @@ class Tally:
     summary : dict
         ``n_errors``, ``n_rows``, ``error_rate``, ``n_queued``, ``n_reviewed``,
         ``unreviewed_weight`` (share of errors in strata with no review yet),
-        ``rest_weight``, ``threshold``, ``confidence_level``, ``method``.
+        ``rest_weight``, ``threshold``, ``confidence_level``, ``method``, and for wrong
+        labels ``n_wrong_label``, ``wrong_label_share`` (with ``_low``/``_high``) and
+        ``corrected_error_rate`` (with ``_low``/``_high``): the error rate once the wrong
+        labels among the errors are corrected.
+    relabel : DataFrame
+        Reviewed rows tagged `WRONG_LABEL`, in row order: ``row``, ``stratum``, ``id``,
+        ``label``, ``prediction`` (empty when the queue has none), their other ``tags``
+        and the ``note``.
     """
 
     categories: pd.DataFrame
@@ -102,10 +211,122 @@ class Tally:
     strata: pd.DataFrame
     reviews: pd.DataFrame
     summary: Mapping[str, Any] = field(default_factory=dict)
+    relabel: pd.DataFrame = field(default_factory=lambda: pd.DataFrame(columns=list(RELABEL_COLUMNS)))
+    _design: Any = None
 
     def __repr__(self):
         return (f"Tally(n_reviewed={self.summary.get('n_reviewed')}, "
-                f"n_categories={len(self.categories) - 1}, n_slices={len(self.slices)})")
+                f"n_categories={len(self.user_categories())}, n_slices={len(self.slices)})")
+
+    def user_categories(self) -> list[str]:
+        """The categories people tagged, largest share first (no `WRONG_LABEL`, no ``(untagged)``)."""
+        return [c for c in self.categories["category"] if c not in (UNTAGGED, WRONG_LABEL)]
+
+    def combined(self, categories) -> Combined:
+        """The share of errors that fixing all of `categories` together would remove.
+
+        One error may carry several tags, so fixing A and B removes the errors tagged A
+        *or* B: the union, not the sum of the shares. The union's share is estimated like
+        any category's (the stratified estimator over each reviewed row's "tagged with any
+        of them"), with the same interval; so is the overlap (tagged with all of them).
+
+        Parameters
+        ----------
+        categories : sequence of str
+            Categories of this tally (as tagged; case and spaces do not matter), at least one,
+            each once. `WRONG_LABEL` may be one of them.
+
+        Returns
+        -------
+        Combined
+
+        Examples
+        --------
+        >>> from slicefind.queue import _demo_found, build_queue
+        >>> queue = build_queue(_demo_found(), budget=30, rest=10)
+        >>> sheet = queue.table[["row", "stratum"]].copy()
+        >>> sheet["reviewed"] = "yes"
+        >>> sheet["tags"] = sheet["stratum"].map({"R1": "smudged print", "R2": "ink smear;smudged print",
+        ...                                       "rest": ""})
+        >>> both = tally(queue, sheet).combined(["smudged print", "ink smear"])
+        >>> print(f"{both.share:.3f} [{both.share_low:.3f}, {both.share_high:.3f}] "
+        ...       f"overlap {both.overlap:.3f}, sum {both.sum_of_shares:.3f}")
+        0.797 [0.646, 0.849] overlap 0.358, sum 1.156
+        """
+        if self._design is None:
+            raise SlicefindValueError("this Tally has no review design attached; build it with tally().")
+        chosen = self.check_categories(categories)
+        design = self._design
+        k_any = design.counts(lambda tags: any(c in tags for c in chosen))
+        k_all = design.counts(lambda tags: all(c in tags for c in chosen))
+        k_fix = design.counts(lambda tags: any(c in tags for c in chosen + (WRONG_LABEL,)))
+        share, low, high, _ = design.share(k_any)
+        overlap, o_low, o_high, _ = design.share(k_all)
+        fixed, f_low, f_high, _ = design.share(k_fix)
+        shares = self.categories.set_index("category")["share"]
+        rate = design.error_rate
+        return Combined(categories=chosen, n_tagged=int(k_any.sum()), share=share,
+                        share_low=low, share_high=high, overlap=overlap, overlap_low=o_low,
+                        overlap_high=o_high, sum_of_shares=float(sum(shares[c] for c in chosen)),
+                        headroom=rate * (1.0 - share), headroom_low=rate * (1.0 - high),
+                        headroom_high=rate * (1.0 - low), headroom_corrected=rate * (1.0 - fixed),
+                        headroom_corrected_low=rate * (1.0 - f_high),
+                        headroom_corrected_high=rate * (1.0 - f_low))
+
+    def pairs(self, top: int = 5) -> pd.DataFrame:
+        """Every pair among the `top` largest categories, fixed together, ranked by union share.
+
+        Parameters
+        ----------
+        top : int, default=5
+            How many of the largest user categories to pair (`WRONG_LABEL` and
+            ``(untagged)`` are left out), ``>= 2``.
+
+        Returns
+        -------
+        DataFrame
+            `PAIR_COLUMNS`: the two categories, reviewed rows tagged with either, the union's
+            share with its interval, the overlap with its interval, the two shares added up,
+            and the error rate if both were fixed with its interval. Empty with fewer than two
+            categories.
+        """
+        if isinstance(top, bool) or not isinstance(top, (int, np.integer)) or top < 2:
+            raise SlicefindValueError(f"top must be an integer >= 2; got {top!r}.")
+        names = self.user_categories()[:int(top)]
+        rows = []
+        for i, a in enumerate(names):
+            for b in names[i + 1:]:
+                got = self.combined([a, b]).as_dict()
+                got.update(category_a=a, category_b=b)
+                rows.append({c: got[c] for c in PAIR_COLUMNS})
+        frame = pd.DataFrame(rows, columns=list(PAIR_COLUMNS))
+        frame = frame.sort_values(["share", "n_tagged", "category_a", "category_b"],
+                                  ascending=[False, False, True, True], kind="mergesort")
+        return frame.reset_index(drop=True).astype({"n_tagged": np.int64})
+
+    def check_categories(self, categories, *, argument: str = "categories") -> tuple:
+        """The normalised, distinct categories of this tally that `categories` names, or an
+        error naming `argument` and the unknown ones (with the closest known name)."""
+        name = argument
+        if isinstance(categories, str) or not hasattr(categories, "__iter__"):
+            raise SlicefindTypeError(f"{name} must be a list of category names; got {categories!r}.")
+        given = list(categories)
+        if not given:
+            raise SlicefindValueError(f"{name} must name at least one category; got none.")
+        if not all(isinstance(c, str) for c in given):
+            raise SlicefindTypeError(f"{name} must hold category names (strings); got {given!r}.")
+        known = [c for c in self.categories["category"] if c != UNTAGGED]
+        chosen = [normalize_tag(c) for c in given]
+        unknown = [g for g, c in zip(given, chosen) if c not in known]
+        if unknown:
+            hint = _suggest(normalize_tag(unknown[0]), known)
+            msg = (f"{name} has {unknown!r}, which {'is' if len(unknown) == 1 else 'are'} not a "
+                   f"category of this tally; its categories are {known}.{hint}")
+            raise SlicefindValueError(msg)
+        repeated = sorted({c for c in chosen if chosen.count(c) > 1})
+        if repeated:
+            raise SlicefindValueError(f"{name} names {repeated!r} more than once.")
+        return tuple(chosen)
 
 
 # --- reading the sheet -------------------------------------------------------------------
@@ -598,25 +819,35 @@ def tally(queue: Queue, reviewed, *, names: Mapping[str, str] | None = None,
     rate = queue.error_rate
     seen = n_rev > 0
     known_weight = float(sizes[seen].sum()) / total if total else 0.0
+    design = _Design(sizes=sizes, n_reviewed=n_rev,
+                     row_stratum=np.array([index[s] for s in row_strata], dtype=np.int64),
+                     tag_sets=tuple(tag_sets), error_rate=rate, confidence_level=confidence_level)
+    wrong = per_stratum.get(WRONG_LABEL, np.zeros(len(strata), dtype=np.int64))
 
     def _row(category, k):
-        est, low, high = stratified_interval(k, n_rev, sizes, confidence_level=confidence_level)
-        if seen.any():
-            _, v = stratified_proportion(k[seen], n_rev[seen], sizes[seen], population=total)
-            se = float(np.sqrt(v)) / known_weight
+        est, low, high, se = design.share(k)
+        if category == WRONG_LABEL:
+            fixed, f_low, f_high = est, low, high
         else:
-            se = float("nan")
+            k_fix = design.counts(lambda tags: (category in tags if category != UNTAGGED else not tags)
+                                  or WRONG_LABEL in tags)
+            fixed, f_low, f_high, _ = design.share(k_fix)
         return {"category": category, "n_tagged": int(k.sum()), "share": est,
                 "share_low": low, "share_high": high, "share_se": se,
                 "est_errors": est * total, "est_errors_low": low * total,
                 "est_errors_high": high * total,
                 "headroom": rate * (1.0 - est),          # common practice: e * (1 - share)
                 "headroom_low": rate * (1.0 - high), "headroom_high": rate * (1.0 - low),
+                "headroom_corrected": rate * (1.0 - fixed),
+                "headroom_corrected_low": rate * (1.0 - f_high),
+                "headroom_corrected_high": rate * (1.0 - f_low),
                 "slices": ";".join(s for s, (nm, _) in slice_names.items() if nm == category)}
 
-    rows = [_row(c, k) for c, k in per_stratum.items()]
+    rows = [_row(c, k) for c, k in per_stratum.items() if c != WRONG_LABEL]
     rows.sort(key=lambda r: (-(r["share"] if np.isfinite(r["share"]) else 0.0), -r["n_tagged"],
                              r["category"]))
+    if WRONG_LABEL in per_stratum:
+        rows.append(_row(WRONG_LABEL, wrong))
     rows.append(_row(UNTAGGED, untagged))
     categories = pd.DataFrame(rows, columns=list(CATEGORY_COLUMNS))
     categories = categories.astype({"category": "str", "slices": "str", "n_tagged": np.int64})
@@ -668,12 +899,33 @@ def tally(queue: Queue, reviewed, *, names: Mapping[str, str] | None = None,
     strata_table["n_skipped"] = np.asarray(skipped, dtype=np.int64)
 
     rest_weight = float(queue.strata.set_index("stratum")["weight"].get(REST, 0.0))
+    w_share, w_low, w_high, _ = design.share(wrong)
     summary = {"n_errors": total, "n_rows": queue.n_rows, "error_rate": rate,
                "n_queued": len(queue.table), "n_reviewed": int(n_rev.sum()),
                "unreviewed_weight": 1.0 - known_weight, "rest_weight": rest_weight,
                "threshold": threshold, "confidence_level": confidence_level,
+               "n_wrong_label": int(wrong.sum()), "wrong_label_share": w_share,
+               "wrong_label_share_low": w_low, "wrong_label_share_high": w_high,
+               "corrected_error_rate": rate * (1.0 - w_share),
+               "corrected_error_rate_low": rate * (1.0 - w_high),
+               "corrected_error_rate_high": rate * (1.0 - w_low),
                "method": "stratified estimator with finite-population correction; interval = "
                          "MOVER over per-stratum Wilson limits, united with the score interval; "
                          "unreviewed strata bounded by none/all"}
     return Tally(categories=categories, slices=slices, cooccurrence=cooccurrence,
-                 strata=strata_table, reviews=reviews, summary=summary)
+                 strata=strata_table, reviews=reviews, summary=summary,
+                 relabel=_relabel_rows(done, queue), _design=design)
+
+
+def _relabel_rows(done: pd.DataFrame, queue: Queue) -> pd.DataFrame:
+    """Reviewed rows tagged WRONG_LABEL, with their queue columns (RELABEL_COLUMNS)."""
+    flagged = done[np.array([WRONG_LABEL in t.split(";") for t in done["tags"]], dtype=bool)]
+    by_row = queue.table.set_index("row")
+    out = pd.DataFrame({"row": flagged["row"].to_numpy(dtype=np.int64)})
+    out["stratum"] = [str(by_row.at[r, "stratum"]) for r in out["row"]]
+    for column in ("id", "label", "prediction"):
+        out[column] = ([by_row.at[r, column] for r in out["row"]] if column in by_row.columns
+                       else [""] * len(out))
+    out["tags"] = [";".join(t for t in tags.split(";") if t != WRONG_LABEL) for tags in flagged["tags"]]
+    out["note"] = flagged["note"].to_numpy()
+    return out[list(RELABEL_COLUMNS)].reset_index(drop=True)

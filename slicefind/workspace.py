@@ -923,14 +923,27 @@ class Workspace:
         scan_id = self._scan_id(scan_id)
         if isinstance(batch_size, bool) or not isinstance(batch_size, (int, np.integer)) or batch_size < 1:
             raise SlicefindValueError(f"batch_size must be an integer >= 1; got {batch_size!r}.")
-        queue = self.load_queue(scan_id)
-        reviews = read_reviews(sheet, queue, trust_order=trust_order)
         if source is None:
             source = f"sheet:{os.fspath(sheet)}" if isinstance(sheet, (str, os.PathLike)) else "sheet"
+        reviews, changes, blank, unchanged = self._plan_import(sheet, scan_id, trust_order)
+        pending = [(scan_id, row, *state, source) for row, state in changes]
+        with self._transaction() as conn:
+            stamp = _now()
+            for start in range(0, len(pending), int(batch_size)):
+                conn.executemany(
+                    "INSERT INTO reviews (scan_id, row, reviewed, tags, note, source, created_at) "
+                    "VALUES (?, ?, ?, ?, ?, ?, ?)",
+                    [c + (stamp,) for c in pending[start:start + int(batch_size)]])
+        return {"lines": len(reviews), "recorded": len(pending), "unchanged": unchanged, "blank": blank}
+
+    def _plan_import(self, sheet, scan_id: int, trust_order: bool):
+        """The sheet's reviews and the (row, (reviewed, tags, note)) changes importing it would record."""
+        queue = self.load_queue(scan_id)
+        reviews = read_reviews(sheet, queue, trust_order=trust_order)
         latest = self._latest_reviews(scan_id)
         before_of = {int(r): (int(d), t, n) for r, d, t, n in
                      zip(latest["row"], latest["reviewed"], latest["tags"], latest["note"])}
-        pending = []
+        changes = []
         blank = unchanged = 0
         for row, done, tags, note, explicit, marked in zip(
                 reviews["row"], reviews["reviewed"], reviews["tags"], reviews["note"],
@@ -943,15 +956,25 @@ class Workspace:
             if before == state:
                 unchanged += 1
                 continue
-            pending.append((scan_id, int(row), *state, source))
-        with self._transaction() as conn:
-            stamp = _now()
-            for start in range(0, len(pending), int(batch_size)):
-                conn.executemany(
-                    "INSERT INTO reviews (scan_id, row, reviewed, tags, note, source, created_at) "
-                    "VALUES (?, ?, ?, ?, ?, ?, ?)",
-                    [c + (stamp,) for c in pending[start:start + int(batch_size)]])
-        return {"lines": len(reviews), "recorded": len(pending), "unchanged": unchanged, "blank": blank}
+            changes.append((int(row), state))
+        return reviews, changes, blank, unchanged
+
+    def preview_import(self, sheet, *, scan_id: int | None = None,
+                       trust_order: bool = False) -> pd.DataFrame:
+        """The rows' latest state as `reviews` would give it after `import_sheet`; writes nothing.
+
+        Lets a caller check what depends on the imported reviews (a tally's categories,
+        say) before anything is stored. Columns ``row``, ``reviewed``, ``tags``, ``note``.
+        """
+        scan_id = self._scan_id(scan_id)
+        _, changes, _, _ = self._plan_import(sheet, scan_id, trust_order)
+        state = self.reviews(scan_id)[["row", "reviewed", "tags", "note"]]
+        merged = {int(r): (bool(d), t, n) for r, d, t, n in state.itertuples(index=False, name=None)}
+        for row, (done, tags, note) in changes:
+            merged[row] = (bool(done), tags, note)
+        frame = pd.DataFrame([(r, *v) for r, v in sorted(merged.items())],
+                             columns=["row", "reviewed", "tags", "note"])
+        return frame.astype({"row": np.int64, "reviewed": bool, "tags": "str", "note": "str"})
 
     def reviews(self, scan_id: int | None = None) -> pd.DataFrame:
         """The latest state of every row reviewed in a scan, ready for `tally` or `Queue.to_csv`.
@@ -1030,14 +1053,18 @@ class Workspace:
     # -- tally -----------------------------------------------------------------------------
 
     def tally(self, *, names: Mapping[str, str] | None = None, threshold: float = 0.5,
-              confidence_level: float = 0.95, scan_id: int | None = None) -> Tally:
-        """`tally` of the stored queue with the stored reviews and names (``names`` override)."""
+              confidence_level: float = 0.95, scan_id: int | None = None,
+              reviews: pd.DataFrame | None = None) -> Tally:
+        """`tally` of the stored queue with the stored reviews and names (``names`` override).
+
+        ``reviews`` (e.g. from `preview_import`) replaces the stored reviews for this call.
+        """
         scan_id = self._scan_id(scan_id)
         queue = self.load_queue(scan_id)
         candidates = set(queue.strata["stratum"]) - {REST}
         merged = {sid: nm for sid, nm in self.names(scan_id).items() if sid in candidates}
         merged.update(names or {})
-        state = self.reviews(scan_id)
+        state = self.reviews(scan_id) if reviews is None else reviews
         inside = state["row"].isin(queue.table["row"])
         if not inside.all():
             msg = (f"{int((~inside).sum())} reviewed rows of scan {scan_id} are not in its current "

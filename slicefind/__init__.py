@@ -6,6 +6,7 @@ scikit-learn, dask) are imported only by the functions that need them.
 from importlib.metadata import PackageNotFoundError, version
 
 from slicefind.compare import Comparison, compare
+from slicefind.decision import decision_paragraphs
 from slicefind.describe import SliceDescription, describe_slice
 from slicefind.queue import Queue, build_queue
 from slicefind.slices import FoundSlices, find_slices
@@ -26,6 +27,7 @@ __all__ = [
     "tally",
     "Tally",
     "read_reviews",
+    "decision_paragraphs",
     "compare",
     "Comparison",
     "describe_slice",

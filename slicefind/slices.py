@@ -7,7 +7,7 @@ every source; the table then shows the passing slices ranked by excess errors.
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import Any, Mapping, Sequence
 
 import numpy as np
@@ -25,7 +25,9 @@ __all__ = ["Slice", "FoundSlices", "find_slices", "TABLE_COLUMNS", "default_min_
 
 #: the contract's columns of `FoundSlices.table`, in order (extra columns follow)
 TABLE_COLUMNS = ("slice_id", "source", "description") + SCORE_COLUMNS + ("q_value",)
-SOURCES = ("rule", "region", "error_mode")
+SOURCES = ("rule", "region", "error_mode", "label_check")
+#: the letter each source's slice ids start with (``R1``, ``C2``, ``L1``)
+ID_PREFIXES = {"rule": "R", "region": "C", "error_mode": "C", "label_check": "L"}
 CLUSTER_CHOICES = ("both", "regions", "error_modes", "none")
 TESTED_COLUMNS = (("description", "source", "n_terms") + SCORE_COLUMNS
                   + ("q_value", "passed", "parent_p_value", "worse_than_parents", "too_large",
@@ -258,6 +260,7 @@ def find_slices(
     max_share: float = 0.5,
     mine_label: bool = True,
     client=None,
+    scores=None,
 ) -> FoundSlices:
     """Find groups of rows where the model errs more often than on the rest.
 
@@ -329,6 +332,19 @@ def find_slices(
     client : distributed.Client, optional
         With a Dask DataFrame as ``data``: the cluster to count on (default the current
         client, or a local cluster of 2 worker processes). See `slicefind.distributed`.
+    scores : str, sequence of str, mapping or array-like, optional
+        The model's probabilities, for the label check (`slicefind.labelcheck`): a column
+        holding the probability of the predicted class; one column per class (a sequence
+        in the sorted order of the class values, or a mapping class -> column); or an
+        ``(n,)`` / ``(n, k)`` array of the same. Needs label and prediction, every row
+        analysed (no ``error_kind``/``true_class``) and a pandas DataFrame. Score
+        columns are never mined (``skipped`` says "scores column"). The rows the scores
+        confidently give another class than the label become candidates with source
+        "label_check" and ids ``L1, L2, ...``: the union of suspected label mistakes and,
+        with at least ``min_rows`` rows, each (given label -> suspected label) pair. They
+        are tested against the scores' own calibration instead of the Fisher test of
+        their error rate (suspected rows are errors by construction), then share the
+        Benjamini–Hochberg step and the selection with every other candidate.
 
     Returns
     -------
@@ -345,6 +361,7 @@ def find_slices(
     scanner = S3 and shift = night
     """
     exclude = (exclude,) if isinstance(exclude, str) else tuple(exclude)
+    user_exclude = exclude
     max_terms, min_rows, min_errors = _check_params(max_terms, min_rows, min_errors,
                                                     fdr, confidence_level, engine, clusters,
                                                     merge_jaccard, distinct_jaccard, max_share)
@@ -362,6 +379,26 @@ def find_slices(
         return max(3, math.floor(at_least * n_errors / n_rows) + 1)
 
     from slicefind.distributed import is_dask_frame
+
+    if scores is not None and (is_dask_frame(data) or client is not None):
+        msg = ("scores= (--scores) needs an in-memory pandas DataFrame; the Dask engine (a Dask "
+               "DataFrame, client=, --engine dask) does not run the label check. Drop scores= or "
+               "load the data with pandas.")
+        raise SlicefindValueError(msg)
+    score_cols: tuple[str, ...] = ()
+    if scores is not None:
+        from slicefind.labelcheck import score_columns
+
+        if not isinstance(data, pd.DataFrame):
+            raise SlicefindTypeError(f"data must be a pandas DataFrame; got {type(data).__name__}.")
+        if label is None or prediction is None:
+            given = "errors=" if errors is not None else "loss=" if loss is not None else "neither"
+            msg = ("scores= needs label= and prediction=: the label check compares the scores with "
+                   f"the given labels; got {given}.")
+            raise SlicefindValueError(msg)
+        score_cols = score_columns(scores, data.columns)
+        exclude = exclude + tuple(c for c in score_cols if c not in exclude)
+    label_check = None
 
     if is_dask_frame(data):
         if engine != "bitset":
@@ -390,6 +427,13 @@ def find_slices(
                                  id_column=id_column, mine_label=mine_label)
         n, k_total = table.n_rows, table.n_errors
         min_rows, min_errors = rows_for(n), errors_for(n, k_total, rows_for(n))
+        if scores is not None:
+            from slicefind.labelcheck import label_check_slices
+
+            # checked before any mining; score columns are skipped as such
+            label_check = label_check_slices(table, scores, min_rows=min_rows)
+            table = replace(table, skipped={c: ("scores column" if c in score_cols else why)
+                                            for c, why in table.skipped.items()})
         if not table.kinds and table.embeddings is None:
             reasons = "; ".join(f"{c}: {r}" for c, r in list(table.skipped.items())[:6])
             msg = f"no column of data can be mined and no embeddings were given ({reasons})."
@@ -426,6 +470,10 @@ def find_slices(
         # a node smaller than min_rows is not a candidate (as for rules)
         extra_slices = [sl for sl in result.slices if sl.rows.size >= min_rows]
         cluster_extra = {"clusters": result}
+    n_clusters = len(extra_slices)
+    if label_check is not None:
+        extra_slices += list(label_check.slices)
+        cluster_extra["label_check"] = label_check
     if extra_slices:
         ex_rows = np.array([sl.rows.size for sl in extra_slices], dtype=np.int64)
         ex_errs = np.array([int(table.errors[sl.rows].sum()) for sl in extra_slices], dtype=np.int64)
@@ -435,6 +483,8 @@ def find_slices(
                                  "n_terms": np.zeros(len(extra_slices), dtype=np.int64)})
         for column in SCORE_COLUMNS:
             ex_frame[column] = ex_scores[column]
+        # the label check's own test: disagreements beyond the scores' calibration
+        ex_frame.loc[n_clusters:, "p_value"] = [sl.extra["p_value"] for sl in extra_slices[n_clusters:]]
         tested = pd.concat([tested, ex_frame], ignore_index=True)
 
     p_all = tested["p_value"].to_numpy()
@@ -459,10 +509,20 @@ def find_slices(
         folded_into[:n_rules] = np.where(folded[:, 0] >= 0,
                                          offsets[np.maximum(folded[:, 0], 0)] + folded[:, 1], -1)
     cluster_folds: dict[int, list[int]] = {}
+    if n_clusters:
+        block = slice(n_rules, n_rules + n_clusters)
+        parent_p[block], worse[block], cluster_folds = _tree_tests(
+            extra_slices[:n_clusters], tested["n_rows"].to_numpy()[block], tested["n_errors"].to_numpy()[block],
+            passed[block], too_large[block], n, k_total, cutoff)
+    if len(extra_slices) > n_clusters:
+        from slicefind.labelcheck import nested_tests
+
+        block = slice(n_rules + n_clusters, None)
+        parent_p[block], worse[block], label_folds = nested_tests(label_check, passed[block],
+                                                                  too_large[block], cutoff)
+        cluster_folds.update({n_clusters + node: [n_clusters + t for t in targets]
+                              for node, targets in label_folds.items()})
     if extra_slices:
-        parent_p[n_rules:], worse[n_rules:], cluster_folds = _tree_tests(
-            extra_slices, tested["n_rows"].to_numpy()[n_rules:], tested["n_errors"].to_numpy()[n_rules:],
-            passed[n_rules:], too_large[n_rules:], n, k_total, cutoff)
         for node, targets in cluster_folds.items():
             folded_into[n_rules + node] = n_rules + targets[0]
     tested["q_value"] = q
@@ -507,9 +567,9 @@ def find_slices(
                 folded_names[target].append(source_named[j])
 
     source_col = tested["source"].to_numpy()
-    ids, counter = [], {"R": 0, "C": 0}
+    ids, counter = [], dict.fromkeys(ID_PREFIXES.values(), 0)
     for idx in kept:
-        prefix = "R" if source_col[idx] == "rule" else "C"
+        prefix = ID_PREFIXES[source_col[idx]]
         counter[prefix] += 1
         ids.append(f"{prefix}{counter[prefix]}")
     id_of = dict(zip(kept, ids))
@@ -532,12 +592,19 @@ def find_slices(
 
     params = dict(max_terms=max_terms, min_rows=min_rows, min_errors=min_errors, fdr=fdr,
                   confidence_level=confidence_level, engine=engine, error_kind=error_kind,
-                  n_bins=n_bins, exclude=list(exclude), n_items=len(items),
+                  n_bins=n_bins, exclude=list(user_exclude), n_items=len(items),
                   n_tested=len(tested), error_definition=table.error_definition,
                   clusters=clusters if has_embeddings else "none",
                   merge_jaccard=merge_jaccard, distinct_jaccard=distinct_jaccard, max_share=max_share,
                   mine_label=mine_label, label_column=table.columns_used.get("label", "label"),
                   prediction_column=table.columns_used.get("prediction", "prediction"))
+    if label_check is not None:
+        from slicefind.labelcheck import _jsonable_summary
+
+        label_ids = {extra_slices[idx - n_rules].key: sid for idx, sid in zip(kept, ids)
+                     if idx >= n_rules + n_clusters}
+        params["scores"] = list(score_cols) if score_cols else "array"
+        params["label_check"] = _jsonable_summary(label_check, label_ids)
     return FoundSlices(table=table_df, tested=tested, eval_table=table, params=params,
                        _rows=slice_rows, extras={"items": items, "counts": counts, **cluster_extra})
 

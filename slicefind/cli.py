@@ -31,13 +31,15 @@ EXAMPLES = {
   slicefind scan dev.parquet --errors is_wrong --exclude example_id --out ws
   slicefind scan dev.csv --label y --prediction p --embeddings emb.npy --id-column parcel_id --out ws
   slicefind scan scores.csv --loss loss --threshold 0.7 --out ws
+  slicefind scan dev.csv --label digit --prediction read_as --scores p0 p1 p2 p3 p4 p5 p6 p7 p8 p9 --out ws
   slicefind scan 'logs/*.parquet' --errors wrong --engine dask --out ws
   slicefind scan logs/ --label y --prediction p --engine dask --embeddings emb --out ws
   slicefind scan logs/ --errors wrong --engine dask --scheduler tcp://10.0.0.5:8786 --out ws""",
     "queue": """examples:
   slicefind queue ws                      # 100 errors, 20 of them from no slice
   slicefind queue ws --budget 200 --rest 40
-  slicefind queue ws --extend 50          # 50 more, continuing the same order""",
+  slicefind queue ws --extend 50          # 50 more, continuing the same order
+  slicefind queue ws --extend 50 --adaptive   # 50 more where the reviews so far settle most""",
     "tally": """examples:
   slicefind tally ws ws/queue.csv
   slicefind tally ws reviewed.csv --name R1="smeared ink" --name C2="tape over label\"""",
@@ -457,6 +459,8 @@ def cmd_scan(args) -> int:
                   engine="bitset" if args.engine == "dask" else args.engine)
     if client is not None:
         kwargs["client"] = client
+    if args.scores:                 # one column: the predicted class's probability
+        kwargs["scores"] = args.scores[0] if len(args.scores) == 1 else list(args.scores)
     images = os.path.abspath(args.images) if args.images else None
     _scan(kwargs, frame, args.out, show=tuple(args.show), images=images,
           image_column=args.image_column, text_column=args.text_column,
@@ -467,14 +471,31 @@ def cmd_scan(args) -> int:
 
 def cmd_queue(args) -> int:
     import slicefind as sf
+    from slicefind.table import SlicefindValueError
     from slicefind.workspace import Workspace
 
+    if args.adaptive and not args.extend:
+        raise SlicefindValueError("--adaptive needs --extend N: it chooses where N more reviews of "
+                                  "the stored queue go.")
+    if args.threshold is not None and not args.adaptive:
+        raise SlicefindValueError("--threshold only applies with --extend N --adaptive (the verdicts "
+                                  "it settles first).")
     ws = Workspace(args.workspace, create=False)
     found = ws.load_found()
     path = os.path.join(ws.path, "queue.csv")
+    step = None
     if args.extend:
-        queue = ws.load_queue().extend(args.extend)
+        current = None
+        if args.adaptive:
+            current = ws.tally(threshold=0.5 if args.threshold is None else args.threshold)
+            if current.summary["n_reviewed"] == 0:
+                raise SlicefindValueError(f"--adaptive needs reviews, and no row of the stored queue is "
+                                          f"reviewed yet; import a filled sheet first (slicefind tally "
+                                          f"{args.workspace} SHEET.csv), or extend without --adaptive.")
+        queue = ws.load_queue().extend(args.extend, adaptive=current)
         ws.save_queue(queue, replace=True)
+        if args.adaptive:
+            step = queue.params["extensions"][-1]
     else:
         queue = sf.build_queue(found, budget=args.budget, rest=args.rest, top=args.top,
                                random_state=args.seed, show=ws.stored_columns())
@@ -482,6 +503,19 @@ def cmd_queue(args) -> int:
     queue.to_csv(path, reviews=ws.reviews(), overwrite=True)
     print(f"queue: {len(queue)} errors in {len(queue.strata)} strata -> {path}")
     print(queue.strata[["stratum", "n_errors", "n_queued", "description"]].to_string(index=False))
+    if step is not None:
+        strata = list(queue.strata["stratum"])
+        why = pd.DataFrame({
+            "stratum": strata,
+            "verdict": [step["verdicts"].get(s, "-") for s in strata],
+            "more_needed": [str(step["more_needed"][s]) if s in step["more_needed"] else "-" for s in strata],
+            "undecided": [step["undecided"].get(s, 0) for s in strata],
+            "neyman": [step["neyman"].get(s, 0) for s in strata],
+            "added": [step["allocated"].get(s, 0) for s in strata],
+            "spread": [f"{step['spread'][s]:.3f}" for s in strata]})
+        print(f"\nadaptive: {step['n']} more ({step['rule']}); 'undecided' settles a candidate's "
+              "verdict, 'neyman' goes by errors x spread (S_h) of the tags so far")
+        print(why.to_string(index=False))
     print(f"fill in 'reviewed' and 'tags' (several as a;b), then: slicefind tally {args.workspace} {path}")
     return 0
 
@@ -774,6 +808,10 @@ def _add_scan_options(p):
     p.add_argument("--embeddings", metavar="FILE", help="(n, d) vectors: .npy, or .parquet/.csv of numeric "
                    "columns; with --engine dask a .npy file or the data's vector column(s), COL[,COL...]")
     p.add_argument("--exclude", nargs="*", default=[], metavar="COL", help="columns never mined")
+    p.add_argument("--scores", nargs="+", default=None, metavar="COL",
+                   help="model probabilities for the label check (suspected label mistakes, ids L1, "
+                        "...): one column, the predicted class's probability, or one column per "
+                        "class in the sorted order of the class values; never mined")
     p.add_argument("--id-column", metavar="COL", help="the column identifying examples")
     p.add_argument("--show", nargs="*", default=[], metavar="COL", help="columns to carry onto the review sheet")
     p.add_argument("--images", metavar="FILE.npy", help="pixel arrays (n, h, w) for thumbnails")
@@ -817,6 +855,11 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--top", type=_int_at_least(1), default=None, help="slices to queue as strata")
     p.add_argument("--seed", type=_int_at_least(0), default=0)
     p.add_argument("--extend", type=_int_at_least(0), default=0, metavar="N", help="add N more to the stored queue")
+    p.add_argument("--adaptive", action="store_true",
+                   help="with --extend: send the N where the stored reviews say they settle most "
+                        "(undecided candidates first, then Neyman allocation)")
+    p.add_argument("--threshold", type=_fraction(), default=None,
+                   help="with --adaptive: precision the verdicts compare with (default 0.5, as tally)")
     p.add_argument("--force", action="store_true", help="replace a stored queue")
     p.set_defaults(func=cmd_queue)
 

@@ -20,10 +20,12 @@ from typing import Any, Mapping, Sequence
 import numpy as np
 import pandas as pd
 
+from slicefind.labelcheck import LABEL_SOURCE
 from slicefind.slices import FoundSlices
 from slicefind.table import SlicefindTypeError, SlicefindValueError, _suggest, neutralize_formulas
 
-__all__ = ["Queue", "build_queue", "REST", "MIN_PER_STRATUM", "QUEUE_COLUMNS", "SHEET_COLUMNS"]
+__all__ = ["Queue", "build_queue", "REST", "MIN_PER_STRATUM", "QUEUE_COLUMNS", "SHEET_COLUMNS",
+           "ADAPTIVE_RULE"]
 
 #: the stratum of error rows that no queued candidate contains
 REST = "rest"
@@ -99,59 +101,124 @@ class Queue:
     def __repr__(self):
         return f"Queue(n_queued={len(self.table)}, n_strata={len(self.strata)})"
 
-    def extend(self, n: int, *, rest: int | None = None) -> "Queue":
+    def extend(self, n: int, *, rest: int | None = None, adaptive=None) -> "Queue":
         """A longer queue: this one unchanged, then `n` more rows continuing each stratum.
 
-        The strata stay as they are. The new rows go to the candidates first, evening
-        out their counts (fewest reviews first, ties by rank), and to ``rest``.
+        The strata stay as they are, and a stratum's new rows are the next ones in its
+        fixed random order (`order`), so its queued rows stay a prefix of that order, a
+        simple random sample of the stratum, whichever rule chose how many it gets.
+
+        The fixed rule (``adaptive=None``) gives the new rows to the candidates first,
+        evening out their counts (fewest reviews first, ties by rank), and to ``rest``.
+
+        The adaptive rule (``adaptive=`` a `Tally` of this queue's reviews) sends them
+        where the reviews so far say they settle most, in two steps:
+
+        1. *Undecided candidates, cheapest to settle first.* Each gets its ``more_needed``
+           (Cochran's sample size at its observed precision, see `tally`) less the rows
+           already queued for it and not yet reviewed, as far as `n` goes: the last one
+           funded may get only part of its need. Confirmed and rejected candidates get
+           nothing here.
+        2. *Neyman allocation of what is left* over every stratum (``rest`` too, unless `rest`
+           is given): ``n_h`` proportional to ``N_h S_h``, reached one row at a time by
+           giving each row to the stratum where it lowers ``sum_h W_h^2 S_h^2 / n_h``
+           most, counting the rows already queued (for a sum of convex terms this greedy
+           step is optimal). ``S_h^2`` adds ``p (1 - p)`` over every category of the
+           tally and the untagged rows, with ``p = (k + 1/2) / (n + 1)`` the stratum's
+           tagged fraction kept off 0 and 1, so that a stratum that looks uniform so far
+           still gets some. Summing over categories minimises the total variance of all
+           the category shares, not just one.
+
+        Undecided verdicts come first because they are the decisions more reviews can
+        still change. In ``benchmarks/bench_coverage.py --adaptive`` (200 seeded first
+        passes of 60 reviews, then 60 more by each rule, on the same seeds) this rule
+        settled 3.17 of 7 candidates on average against 2.07 for the fixed rule and 1.77
+        for Neyman allocation alone (2.72, 2.46 and 2.43 of 3 in a smaller world), and
+        the 95% share intervals covered 95.6% (fixed: 96.6%). The price is wider share
+        intervals when candidates are many (median width 0.180 against 0.148): the reviews
+        go to the verdicts, not the shares. Giving the last undecided candidate part of
+        its need, rather than nothing, settled more in each setting tried.
+
+        The estimates keep their formulas: every stratum's queued rows are still a prefix
+        of its random order. Since the counts now depend on the first reviews (a two-phase
+        design), the intervals are no longer exact by construction; the benchmark measures
+        their coverage.
 
         Parameters
         ----------
         n : int
-            Rows to add, ``>= 1``. Fewer are added (with a warning) when the strata run out.
+            Rows to add, ``>= 1``, at most the error rows not yet queued.
         rest : int, optional
-            How many of the `n` go to ``rest``; default its current share of the queue.
+            How many of the `n` go to ``rest``. Default: with the fixed rule its current
+            share of the queue; with the adaptive rule whatever Neyman allocation gives it.
+        adaptive : Tally, optional
+            The tally of this queue's reviews so far (`tally` or `Workspace.tally`), with
+            at least one reviewed row. Its strata must be this queue's.
 
         Returns
         -------
         Queue
-            Its first ``len(self)`` lines equal ``self.table``.
+            Its first ``len(self)`` lines equal ``self.table``. ``params["extensions"]``
+            gains ``{"n", "rest"}`` for the fixed rule, and for the adaptive one also
+            ``"adaptive": True``, the ``rule``, ``allocated`` per stratum, how many of
+            those came from each step (``undecided``, ``neyman``, ``asked`` for `rest`),
+            the ``verdicts`` and ``more_needed`` read from the tally, and ``spread`` (S_h).
+
+        Raises
+        ------
+        SlicefindValueError
+            When `n` exceeds the error rows not yet queued, or `adaptive` is a tally of
+            another queue or has no reviewed row; the queue is unchanged.
+
+        References
+        ----------
+        .. [1] W. G. Cochran, *Sampling Techniques*, 3rd ed., Wiley (1977), §5.5 (optimum
+               allocation) and ch. 5A (allocation for several items) (recalled).
 
         Examples
         --------
+        >>> from slicefind.tally import tally
         >>> queue = build_queue(_demo_found(), budget=30, rest=10)
         >>> longer = queue.extend(20)
         >>> len(longer), longer.table.head(len(queue)).equals(queue.table)
         (50, True)
+        >>> sheet = queue.table[["row", "stratum"]].copy()
+        >>> sheet["reviewed"] = "yes"                       # 7 of R1's 10 rows are smudged
+        >>> nth = sheet.groupby("stratum").cumcount()
+        >>> sheet["tags"] = ["smudged print" if s == "R1" and k % 4 else ""
+        ...                  for s, k in zip(sheet["stratum"], nth)]
+        >>> smarter = queue.extend(20, adaptive=tally(queue, sheet))
+        >>> step = smarter.params["extensions"][-1]
+        >>> step["verdicts"], step["more_needed"], step["undecided"], step["neyman"]
+        ({'R1': 'undecided', 'R2': 'rejected'}, {'R1': 12, 'R2': 0}, {'R1': 12}, {'R1': 7, 'R2': 1})
         """
         n = _check_int("n", n, 1)
+        if rest is not None:
+            rest = min(_check_int("rest", rest, 0), n)
         counts = self.strata.set_index("stratum")["n_queued"].astype(int).to_dict()
         caps = self.sizes
-        if rest is None:
-            rest = int(round(n * counts.get(REST, 0) / len(self.table))) if len(self.table) else 0
-        rest = min(_check_int("rest", rest, 0), n)
-        candidates = [s for s in self.strata["stratum"] if s != REST]
-        add = dict.fromkeys(self.strata["stratum"], 0)
-        room_rest = caps.get(REST, 0) - counts.get(REST, 0)
-        first = min(rest, room_rest)
-        add_rest = first
-        used = _water_fill([counts[s] for s in candidates], [caps[s] for s in candidates], n - first)
-        for s, u in zip(candidates, used):
-            add[s] = int(u)
-        leftover = n - first - int(sum(used))
-        add_rest += min(leftover, room_rest - first)
-        if REST in add:
-            add[REST] = add_rest
-        added = sum(add.values())
-        if added < n:
-            msg = (f"only {added} more error rows remain unqueued, so the queue grows by {added}, "
-                   f"not {n}; every stratum is now queued in full (ask for at most {added} to "
-                   "avoid this warning).")
-            warnings.warn(msg, stacklevel=2)
-        if added == 0:
-            return self
+        reading = None if adaptive is None else _read_tally(self, adaptive)
+        left = sum(caps[s] - counts[s] for s in caps)
+        if n > left:
+            more = (f"ask for n <= {left}" if left else
+                    "every stratum is queued in full, so the queue cannot grow")
+            msg = (f"n={n} is more than the {left} error rows not yet queued; {more} "
+                   "(the queue is unchanged).")
+            raise SlicefindValueError(msg)
+        if reading is None:
+            add, quota = _fixed_allocation(list(self.strata["stratum"]), counts, caps, n, rest)
+            step = {"n": n, "rest": quota}
+        else:
+            steps = _adaptive_allocation(list(self.strata["stratum"]), counts, caps,
+                                         reading["needs"], reading["spread"], n, rest)
+            add = {s: sum(part.get(s, 0) for part in steps.values()) for s in caps}
+            step = {"n": n, "rest": rest, "adaptive": True, "rule": ADAPTIVE_RULE,
+                    "allocated": {s: int(c) for s, c in add.items() if c},
+                    **{k: {s: int(c) for s, c in part.items() if c} for k, part in steps.items()},
+                    "verdicts": reading["verdicts"], "more_needed": reading["more_needed"],
+                    "spread": {s: round(float(v), 4) for s, v in reading["spread"].items()}}
         params = dict(self.params)
-        params["extensions"] = list(params.get("extensions", [])) + [{"n": n, "rest": rest}]
+        params["extensions"] = list(params.get("extensions", [])) + [step]
         return _assemble(self.strata.drop(columns="n_queued"), self._order, self._rowdata,
                          self._batches + ({s: c for s, c in add.items() if c},), params,
                          self.n_rows, self.n_errors)
@@ -230,18 +297,147 @@ def _water_fill(counts: Sequence[int], caps: Sequence[int], amount: int) -> list
     return added
 
 
+#: how `Queue.extend(..., adaptive=)` allocates, as recorded in ``params["extensions"]``
+ADAPTIVE_RULE = "undecided candidates first, cheapest to settle first; then Neyman allocation"
+
+
+def _fixed_allocation(strata: Sequence[str], counts: Mapping[str, int], caps: Mapping[str, int],
+                      n: int, rest: int | None) -> tuple[dict[str, int], int]:
+    """New rows per stratum by the fixed rule, and rest's quota; assumes n fits in the pool."""
+    total = sum(counts.values())
+    if rest is None:
+        rest = min(int(round(n * counts.get(REST, 0) / total)) if total else 0, n)
+    candidates = [s for s in strata if s != REST]
+    add = dict.fromkeys(strata, 0)
+    room_rest = caps.get(REST, 0) - counts.get(REST, 0)
+    first = min(rest, room_rest)
+    used = _water_fill([counts[s] for s in candidates], [caps[s] for s in candidates], n - first)
+    for s, u in zip(candidates, used):
+        add[s] = int(u)
+    if REST in add:
+        add[REST] = first + min(n - first - int(sum(used)), room_rest - first)
+    return add, rest
+
+
+def _read_tally(queue: Queue, result) -> dict[str, Any]:
+    """What the adaptive rule reads from a tally of `queue`'s reviews, after checking it is one.
+
+    Returns ``needs`` (undecided candidate -> rows still to queue to settle it), ``spread``
+    (stratum -> S_h), ``verdicts`` and ``more_needed`` (candidate -> as in the tally).
+    """
+    parts = {"strata": ("stratum", "n_errors"), "slices": ("slice_id", "verdict", "more_needed"),
+             "reviews": ("row", "reviewed", "tags")}
+    for attribute, columns in parts.items():
+        frame = getattr(result, attribute, None)
+        if not isinstance(frame, pd.DataFrame) or not set(columns) <= set(frame.columns):
+            msg = (f"adaptive must be the Tally of this queue's reviews (tally(queue, reviewed) or "
+                   f"Workspace.tally()); got {type(result).__name__}, whose {attribute!r} is not a "
+                   f"table with columns {list(columns)}.")
+            raise SlicefindTypeError(msg)
+    ours = list(zip(queue.strata["stratum"], queue.strata["n_errors"].astype(int)))
+    theirs = list(zip(result.strata["stratum"].astype(str), result.strata["n_errors"].astype(int)))
+    if ours != theirs:
+        msg = (f"adaptive is a tally of another queue: its strata (with their error rows) are "
+               f"{dict(theirs)}, this queue's are {dict(ours)}; tally this queue's reviews "
+               "(tally(queue, reviewed)) and pass that.")
+        raise SlicefindValueError(msg)
+    stratum_of = dict(zip(queue.table["row"].astype(int), queue.table["stratum"].astype(str)))
+    done = result.reviews[result.reviews["reviewed"].astype(bool)]
+    rows = [int(r) for r in done["row"]]
+    outside = [r for r in rows if r not in stratum_of]
+    if outside:
+        msg = (f"adaptive is a tally of another queue: {len(outside)} of its reviewed rows are not in "
+               f"this queue (first: {outside[:5]}); tally this queue's reviews and pass that.")
+        raise SlicefindValueError(msg)
+    if not rows:
+        msg = ("adaptive is a tally with no reviewed row yet, so there is nothing to adapt to; "
+               "review some of the queue first, or extend without adaptive.")
+        raise SlicefindValueError(msg)
+    names = list(queue.strata["stratum"])
+    tag_sets = [tuple(t for t in str(tags).split(";") if t) for tags in done["tags"]]
+    categories = sorted({t for tags in tag_sets for t in tags})
+    n_h = dict.fromkeys(names, 0)
+    k_h = {s: dict.fromkeys(categories + [None], 0) for s in names}     # None: untagged
+    for r, tags in zip(rows, tag_sets):
+        s = stratum_of[r]
+        n_h[s] += 1
+        for t in tags or (None,):
+            k_h[s][t] += 1
+    spread = {}
+    for s in names:
+        p = (np.array(list(k_h[s].values()), dtype=float) + 0.5) / (n_h[s] + 1.0)
+        spread[s] = float(np.sqrt(np.sum(p * (1.0 - p))))
+    queued = queue.strata.set_index("stratum")["n_queued"].astype(int)
+    verdicts, more, needs = {}, {}, {}
+    decided = result.slices[["slice_id", "verdict", "more_needed"]]
+    for sid, verdict, more_needed in decided.itertuples(index=False):
+        verdicts[str(sid)], more[str(sid)] = str(verdict), int(more_needed)
+        if verdict == "undecided":
+            needs[str(sid)] = int(more_needed) - (int(queued[sid]) - n_h[str(sid)])
+    return {"needs": needs, "spread": spread, "verdicts": verdicts, "more_needed": more}
+
+
+def _adaptive_allocation(strata: Sequence[str], counts: Mapping[str, int], caps: Mapping[str, int],
+                         needs: Mapping[str, int], spread: Mapping[str, float], n: int,
+                         rest: int | None) -> dict[str, dict[str, int]]:
+    """New rows per stratum by the adaptive rule, split by step: ``asked`` (rest's quota when
+    `rest` is given), ``undecided``, ``neyman``. Assumes n fits in the pool and `strata` is in
+    rank order (ties go to the higher rank)."""
+    rank = {s: i for i, s in enumerate(strata)}
+    room = {s: caps[s] - counts[s] for s in strata}
+    steps = {"asked": dict.fromkeys(strata, 0), "undecided": dict.fromkeys(strata, 0),
+             "neyman": dict.fromkeys(strata, 0)}
+    left = n
+    if rest is not None and REST in room:
+        asked = min(rest, room[REST])
+        steps["asked"][REST] = asked
+        room[REST] -= asked
+        left -= asked
+    for need, _, s in sorted((needs[s], rank[s], s) for s in needs):
+        give = min(need, room[s], left)
+        if give <= 0:
+            continue
+        steps["undecided"][s] = give
+        room[s] -= give
+        left -= give
+    total = float(sum(caps.values()))
+    queued = {s: counts[s] + steps["undecided"][s] + steps["asked"][s] for s in strata}
+
+    def gain(s):      # drop of W_h^2 S_h^2 / m_h when m_h -> m_h + 1 (infinite from none)
+        m = queued[s]
+        return np.inf if m == 0 else (caps[s] / total * spread[s]) ** 2 / (m * (m + 1.0))
+
+    eligible = [s for s in strata if (rest is None or s != REST) and room[s] > 0]
+    heap = [(-gain(s), rank[s], s) for s in eligible]
+    heapq.heapify(heap)
+    while left > 0 and heap:
+        _, _, s = heapq.heappop(heap)
+        steps["neyman"][s] += 1
+        queued[s] += 1
+        room[s] -= 1
+        left -= 1
+        if room[s] > 0:
+            heapq.heappush(heap, (-gain(s), rank[s], s))
+    for s in strata:                  # candidates full while rest was capped by `rest`
+        spill = min(left, room[s])
+        steps["neyman"][s] += spill
+        left -= spill
+    return steps
+
+
 def _allocate(sizes: Sequence[int], n_rest_base: int, budget: int, rest: int,
-              top: int | None) -> tuple[list[int], int]:
+              top: int | None, always: int = 0) -> tuple[list[int], int]:
     """Reviews per candidate stratum (rank order; 0 = not queued) and for rest.
 
     Assumes every size is >= 1. Candidates are admitted in rank order while the budget
     left after rest's quota gives each min(MIN_PER_STRATUM, size); what remains evens
     out the admitted candidates, then goes to rest, whose stratum also holds the errors
-    of candidates not admitted.
+    of candidates not admitted. The first `always` candidates (label checks) come on
+    top of `top`.
     """
     quota = min(rest, budget)
     avail = budget - quota
-    limit = len(sizes) if top is None else min(top, len(sizes))
+    limit = len(sizes) if top is None else min(top + always, len(sizes))
     alloc = [0] * len(sizes)
     admitted = 0
     for j in range(limit):
@@ -253,8 +449,9 @@ def _allocate(sizes: Sequence[int], n_rest_base: int, budget: int, rest: int,
         admitted += 1
     if top is not None and admitted < limit:
         needed = quota + sum(min(MIN_PER_STRATUM, s) for s in sizes[:limit])
-        msg = (f"budget={budget} cannot give top={top} candidates {MIN_PER_STRATUM} reviews each "
-               f"besides rest={rest}; it needs budget >= {needed}, or a smaller top, or top=None "
+        checks = f" and the {always} label-check candidates" if always else ""
+        msg = (f"budget={budget} cannot give top={top} candidates{checks} {MIN_PER_STRATUM} reviews "
+               f"each besides rest={rest}; it needs budget >= {needed}, or a smaller top, or top=None "
                "to queue as many candidates as the budget allows.")
         raise SlicefindValueError(msg)
     n_rest = n_rest_base + sum(sizes[admitted:])
@@ -266,6 +463,13 @@ def _allocate(sizes: Sequence[int], n_rest_base: int, budget: int, rest: int,
     avail -= sum(extra)
     more_rest = min(avail, n_rest - rest_alloc)
     return alloc, rest_alloc + more_rest
+
+
+def _label_checks_first(table: pd.DataFrame) -> list[int]:
+    """Positions of the slices of ``found.table``: label-check ones first, each group in rank order."""
+    checks = (table["source"] == LABEL_SOURCE).to_numpy() if "source" in table.columns else \
+        np.zeros(len(table), dtype=bool)
+    return np.concatenate([np.flatnonzero(checks), np.flatnonzero(~checks)]).tolist()
 
 
 def _check_show(show, data: pd.DataFrame) -> tuple[str, ...]:
@@ -353,7 +557,10 @@ def build_queue(
 
     Each error row goes to the highest-ranked candidate that contains it; the first
     candidates (in the order of ``found.table``) become strata, and every other error
-    row falls in ``rest``. ``rest`` gets its quota, each queued candidate at least
+    row falls in ``rest``. Label-check candidates (source "label_check", suspected label
+    mistakes) come before the others, whatever their rank: they keep all their error
+    rows, are always queued as strata (besides the `top` others) when the budget gives
+    each its 5 reviews, so a reviewer sees the suspected rows as their own stratum. ``rest`` gets its quota, each queued candidate at least
     5 reviews (fewer only if its stratum is smaller), and what remains of the budget
     evens out the candidates' counts (never beyond a stratum's size); if the candidates
     are queued in full the remainder goes to ``rest``. Within a stratum rows follow one
@@ -370,8 +577,9 @@ def build_queue(
     rest : int, default=20
         Reviews reserved for the errors no queued candidate contains.
     top : int, optional
-        Candidates to queue as strata; default as many as the budget gives 5 reviews
-        each. Candidates whose errors all belong to higher-ranked ones are skipped.
+        Candidates to queue as strata, not counting label-check ones (always queued);
+        default as many as the budget gives 5 reviews each. Candidates whose errors all
+        belong to higher-ranked ones are skipped.
     random_state : int, Generator or None, default=0
         Seeds the review order. The same seed gives the same order in every stratum;
         a larger budget with the same strata queues a superset, row for row a
@@ -418,18 +626,20 @@ def build_queue(
     key = rng.permutation(error_rows.size)                 # one random key per error row
     owner = np.full(error_rows.size, -1, dtype=np.int64)
     slice_ids = list(found.table["slice_id"])
-    for j, sid in enumerate(slice_ids):           # rank order: the first candidate keeps a row
-        hit = np.intersect1d(found.rows(sid), error_rows, assume_unique=True)
+    ranked = _label_checks_first(found.table)
+    for j in ranked:                        # rank order: the first candidate keeps a row
+        hit = np.intersect1d(found.rows(slice_ids[j]), error_rows, assume_unique=True)
         idx = np.searchsorted(error_rows, hit)
         idx = idx[owner[idx] == -1]
         owner[idx] = j
     counts = np.bincount(owner[owner >= 0], minlength=len(slice_ids))
-    nonempty = [j for j in range(len(slice_ids)) if counts[j] > 0]
+    nonempty = [j for j in ranked if counts[j] > 0]
     sizes = [int(counts[j]) for j in nonempty]
     n_rest_base = int((owner == -1).sum())
-    alloc, rest_alloc = _allocate(sizes, n_rest_base, budget, rest, top)
+    n_checks = sum(1 for j in nonempty if found.table["source"].iat[j] == LABEL_SOURCE)
+    alloc, rest_alloc = _allocate(sizes, n_rest_base, budget, rest, top, always=n_checks)
 
-    queued = [j for j, a in zip(nonempty, alloc) if a > 0]
+    queued = sorted(j for j, a in zip(nonempty, alloc) if a > 0)     # strata in rank order
     is_rest = ~np.isin(owner, queued)
     order: dict[str, np.ndarray] = {}
     records = []

@@ -26,6 +26,7 @@ from typing import Any, Mapping
 import numpy as np
 import pandas as pd
 
+from slicefind.labelcheck import LABEL_SOURCE
 from slicefind.queue import REST, Queue
 from slicefind.stats import (cochran_sample_size, stratified_interval, stratified_proportion,
                              wilson_interval_fpc)
@@ -181,7 +182,8 @@ class Tally:
         the error rate once the wrong labels are corrected.
     slices : DataFrame
         One line per queued candidate: ``slice_id``, ``description``, ``name`` and where it
-        came from (``names`` or ``tags``), ``n_errors`` in its stratum, ``n_reviewed``,
+        came from (``names``, ``tags``, or ``source`` for a label-check candidate, named
+        `WRONG_LABEL`), ``n_errors`` in its stratum, ``n_reviewed``,
         ``n_named`` (reviewed rows tagged with the name), ``precision`` with its interval,
         ``verdict`` and ``more_needed``.
     cooccurrence : DataFrame
@@ -802,11 +804,16 @@ def tally(queue: Queue, reviewed, *, names: Mapping[str, str] | None = None,
 
     # candidate names: given, or the tag used most in the stratum
     slice_names: dict[str, tuple[str, str]] = {}
+    source_of = dict(zip(queue.strata["stratum"], queue.strata["source"]))
     for s in strata:
         if s == REST:
             continue
         if s in named:
             slice_names[s] = (named[s], "names")
+            continue
+        if source_of.get(s) == LABEL_SOURCE:        # suspected label mistakes stand for one
+            slice_names[s] = (WRONG_LABEL, "source")
+            per_stratum.setdefault(WRONG_LABEL, np.zeros(len(strata), dtype=np.int64))
             continue
         counts = Counter(t for tags, rs in zip(tag_sets, row_strata) if rs == s for t in tags)
         if counts:

@@ -188,16 +188,17 @@ def test_extend_keeps_the_sheet_and_continues_each_stratum():
 
 
 def test_extend_with_explicit_rest_and_beyond_the_errors():
-    """extend(n, rest=k) gives rest k more; asking for more rows than remain warns and stops."""
+    """extend(n, rest=k) gives rest k more; asking for more rows than remain is refused by name."""
     found = strata_found([20, 10], 15)
     queue = build_queue(found, budget=20, rest=5)
     longer = queue.extend(6, rest=6)
     assert 11 == int(longer.strata.set_index("stratum").at[REST, "n_queued"])
-    with pytest.warns(UserWarning, match="only 19 more error rows"):
-        full = longer.extend(100)
+    with pytest.raises(SlicefindValueError, match="n=100 is more than the 19 error rows not yet queued"):
+        longer.extend(100)
+    full = longer.extend(19)
     assert 45 == len(full)                             # 20 + 10 + 15 errors, all queued
-    with pytest.warns(UserWarning, match="only 0 more"):
-        assert full is full.extend(5)
+    with pytest.raises(SlicefindValueError, match="n=5 is more than the 0 error rows.*queued in full"):
+        full.extend(5)
 
 
 def test_larger_budget_same_strata_draws_a_superset_in_order():

@@ -30,7 +30,7 @@ from slicefind.slices import Slice, default_min_rows
 from slicefind.table import EvalTable, SlicefindTypeError, SlicefindValueError, _suggest
 
 __all__ = ["LABEL_SOURCE", "UNION_KEY", "LabelCheck", "label_check_slices", "score_columns",
-           "poisson_binomial_sf", "nested_tests", "SCORE_KINDS"]
+           "poisson_binomial_sf", "nested_tests", "params_summary", "SCORE_KINDS"]
 
 #: the `Slice.source` of this module's candidates (ids ``L1``, ``L2``, ...)
 LABEL_SOURCE = "label_check"
@@ -573,7 +573,7 @@ def _predicted_joint(q: np.ndarray, given: np.ndarray, predicted: np.ndarray,
     return thresholds, np.where(q >= limit, predicted, -1).astype(np.int64)
 
 
-def _jsonable_summary(check: LabelCheck, ids: Mapping[str, str]) -> dict[str, Any]:
+def params_summary(check: LabelCheck, ids: Mapping[str, str]) -> dict[str, Any]:
     """What a scan keeps of a label check in its params (JSON): kind, columns, thresholds,
     the confident joint, and per listed slice id its given/suspected class and test."""
     tests = check.tests.set_index("key") if len(check.tests) else None

@@ -559,10 +559,10 @@ def build_queue(
     candidates (in the order of ``found.table``) become strata, and every other error
     row falls in ``rest``. Label-check candidates (source "label_check", suspected label
     mistakes) come before the others, whatever their rank: they keep all their error
-    rows, are always queued as strata (besides the `top` others) when the budget gives
-    each its 5 reviews, so a reviewer sees the suspected rows as their own stratum. ``rest`` gets its quota, each queued candidate at least
-    5 reviews (fewer only if its stratum is smaller), and what remains of the budget
-    evens out the candidates' counts (never beyond a stratum's size); if the candidates
+    rows and are always queued as strata (besides the `top` others) when the budget gives
+    each its 5 reviews, so a reviewer sees the suspected rows as their own stratum.
+    ``rest`` gets its quota, each queued candidate at least 5 reviews (fewer only if its
+    stratum is smaller), and what remains of the budget evens out the candidates' counts (never beyond a stratum's size); if the candidates
     are queued in full the remainder goes to ``rest``. Within a stratum rows follow one
     fixed random order, so any reviewed prefix is a simple random sample of the stratum,
     and the sheet interleaves the strata evenly, so stopping early still leaves every

@@ -599,12 +599,12 @@ def find_slices(
                   mine_label=mine_label, label_column=table.columns_used.get("label", "label"),
                   prediction_column=table.columns_used.get("prediction", "prediction"))
     if label_check is not None:
-        from slicefind.labelcheck import _jsonable_summary
+        from slicefind.labelcheck import params_summary
 
         label_ids = {extra_slices[idx - n_rules].key: sid for idx, sid in zip(kept, ids)
                      if idx >= n_rules + n_clusters}
         params["scores"] = list(score_cols) if score_cols else "array"
-        params["label_check"] = _jsonable_summary(label_check, label_ids)
+        params["label_check"] = params_summary(label_check, label_ids)
     return FoundSlices(table=table_df, tested=tested, eval_table=table, params=params,
                        _rows=slice_rows, extras={"items": items, "counts": counts, **cluster_extra})
 

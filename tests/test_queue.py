@@ -1,5 +1,4 @@
 """The review queue: disjoint strata, budget split, fixed random order, top-ups, the sheet."""
-import warnings
 
 import numpy as np
 import pandas as pd

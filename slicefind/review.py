@@ -68,7 +68,7 @@ from slicefind.describe import label_column, prediction_column
 from slicefind.queue import QUEUE_COLUMNS, REST
 from slicefind.table import (SlicefindError, SlicefindTypeError, SlicefindValueError,
                              WorkspaceBusyError)
-from slicefind.tally import UNTAGGED, normalize_tag
+from slicefind.tally import UNTAGGED, WRONG_LABEL, normalize_tag
 
 __all__ = ["ReviewServer", "make_server", "serve", "MAX_JSON_BYTES", "MAX_JSON_DEPTH",
            "MAX_SHEET_BYTES", "MAX_TAG_LENGTH", "IMAGE_TYPES", "CATEGORIES_ARTIFACT", "SOURCE"]
@@ -340,10 +340,13 @@ class _ReviewApp:
         self.ws.save_artifact(CATEGORIES_ARTIFACT, list(categories), scan_id=self.scan_id)
 
     def categories(self, reviews: pd.DataFrame, names: Mapping[str, str]) -> list[str]:
-        """The stored list, then tags in use and candidate names not on it (alphabetically)."""
+        """The stored list, then tags in use and candidate names not on it (alphabetically).
+
+        `WRONG_LABEL` is left out: the page gives it a button (and a key) of its own.
+        """
         listed = self._stored_categories()
         used = {t for text in reviews["tags"] for t in _tags_list(text)} | set(names.values())
-        return listed + sorted(used - set(listed))
+        return [c for c in listed + sorted(used - set(listed)) if c != WRONG_LABEL]
 
     def _remember(self, tags: Iterable[str]) -> None:
         """Append new category names to the stored list."""
@@ -530,7 +533,7 @@ class _ReviewApp:
                   for s in fixed_strata]
         return {"workspace": os.path.abspath(self.ws.path), "rows": rows, "strata": strata,
                 "names": names, "categories": categories,
-                "reserved": UNTAGGED, "tally": self.tally(version), "version": version,
+                "reserved": UNTAGGED, "wrong_label": WRONG_LABEL, "tally": self.tally(version), "version": version,
                 "n_rows": queue.n_rows, "n_errors": queue.n_errors,
                 "error_rate": queue.error_rate, "source": SOURCE,
                 "label_name": label_column(self.found.eval_table),
@@ -649,6 +652,9 @@ class _ReviewApp:
         name = self._category_name(body.get("name"), "name")
         if not name:
             raise _HTTPError(400, "name must not be empty.")
+        if name == WRONG_LABEL:
+            raise _HTTPError(400, f"name {WRONG_LABEL!r} is reserved for rows whose dev-set label is "
+                                  "wrong; use its own button (key w) on an example.")
         remove = body.get("remove", False)
         if not isinstance(remove, bool):
             raise _HTTPError(400, "remove must be true or false.")

@@ -18,7 +18,7 @@ import slicefind as sf
 from slicefind import review
 from slicefind.describe import describe_slice
 from slicefind.queue import build_queue
-from slicefind.tally import read_reviews, tally
+from slicefind.tally import WRONG_LABEL, read_reviews, tally
 from slicefind.workspace import Workspace
 
 SHOW = ("scanner", "belt_speed", "label_stock", "shift")
@@ -259,6 +259,17 @@ def test_name_and_categories(server, workspace):
     assert ["glare", "faded print"] == answer["categories"]
 
 
+def test_wrong_label_is_a_tag_of_its_own_not_a_category(server, workspace):
+    """Toggling the wrong-label tag stores it on the row but keeps it off the numbered category list."""
+    row = _queued(workspace)
+    _, answer = _call(server, "POST", "api/review", {"row": row, "toggle": "Wrong label"})
+    assert ([WRONG_LABEL], True) == (answer["row"]["tags"], answer["row"]["reviewed"])
+    _, state = _call(server, "GET", "api/state")
+    assert (WRONG_LABEL, []) == (state["wrong_label"], state["categories"])
+    with Workspace(workspace, create=False) as ws:
+        assert WRONG_LABEL == ws.reviews().set_index("row").at[row, "tags"]
+
+
 BAD_REQUESTS = [
     ("unknown row", "POST", "api/review", {"row": 10**9, "toggle": "faded print"}, {}, 404),
     ("row as text", "POST", "api/review", {"row": "12", "toggle": "faded print"}, {}, 400),
@@ -281,6 +292,7 @@ BAD_REQUESTS = [
     ("rest has no name", "POST", "api/name", {"slice_id": "rest", "name": "faded"}, {}, 404),
     ("name not text", "POST", "api/name", {"slice_id": "R1", "name": 3}, {}, 400),
     ("empty category", "POST", "api/category", {"name": ""}, {}, 400),
+    ("wrong label as a category", "POST", "api/category", {"name": "(wrong label)"}, {}, 400),
     ("unknown API", "POST", "api/delete_everything", {"row": 1}, {}, 404),
     ("GET on a write", "GET", "api/review", None, {}, 405),
     ("PUT", "PUT", "api/review", {"row": "QUEUED", "toggle": "a"}, {}, 405),
@@ -632,6 +644,9 @@ def test_page_tags_with_keys_and_survives_a_reload(workspace, tmp_path):
                 tagged[row] = presses
             plain = current_row()
             keys.press("r")                                       # reviewed, no category; moves on
+            mislabelled = current_row()
+            keys.press("w")                                       # the dev-set label is wrong
+            keys.press("j")
             keys.press("a")
             keys.type("torn label")
             keys.press("Enter")
@@ -649,6 +664,7 @@ def test_page_tags_with_keys_and_survives_a_reload(workspace, tmp_path):
             listed = page.locator("#categories li").evaluate_all("items => items.map(i => i.dataset.category)")
             name = page.input_value("#cand-name")
             pressed = page.locator(f"#card-{next(iter(tagged))} .tag[aria-pressed='true']").all_inner_texts()
+            wrong_pressed = page.locator(f"#card-{mislabelled} .tag[aria-pressed='true']").all_inner_texts()
             current = current_row()
             page.wait_for_selector(f"#card-{current} img.thumb")
             loaded = page.locator(f"#card-{current} img.thumb").evaluate(
@@ -704,6 +720,9 @@ def test_page_tags_with_keys_and_survives_a_reload(workspace, tmp_path):
     assert categories == listed
     assert ({"R1": "faded print"}, "faded print") == (names, name)
     assert ["1fadedprint"] == ["".join(t.split()) for t in pressed]
+    assert (["wwronglabel"], WRONG_LABEL) == (["".join(t.split()) for t in wrong_pressed],
+                                               stored.at[mislabelled, "tags"])
+    assert WRONG_LABEL in [r[0] for r in page_categories]
     assert (where, 12, True) == (current, loaded, help_open)          # back where it was; crop shown
     assert expected == {row: exported_reviews.at[row, "tags"] for row in tagged}
     assert "torn label" == stored.at[imported_row, "tags"]

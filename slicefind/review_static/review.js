@@ -488,6 +488,12 @@
       data: { category: c },
       onclick: (ev) => { ev.stopPropagation(); select(index); toggle(row, c); },
     }, k < 9 ? el("kbd", { text: String(k + 1) }) : null, c));
+    const wrong = app.state.wrong_label;
+    const wrongToggle = el("button", {
+      type: "button", class: "tag wrong", "aria-pressed": tagged.has(wrong) ? "true" : "false",
+      title: "the dev set's label of this example is wrong", data: { category: wrong },
+      onclick: (ev) => { ev.stopPropagation(); select(index); toggle(row, wrong); },
+    }, el("kbd", { text: "w" }), "wrong label");
     const note = el("input", { id: `note-${row}`, class: "note", maxlength: "4000", autocomplete: "off",
       placeholder: "note (e)", "aria-label": `note on row ${row}` });
     note.value = item.note || "";
@@ -516,7 +522,7 @@
       item.image_path ? el("p", { class: "hint path", text: item.image_path }) : null,
       el("div", { class: "toggles" }, toggles.length ? toggles
         : el("span", { class: "hint", text: stratum().stratum === "rest" ? "No categories yet: press a to add one."
-          : "No categories yet: press a to add one, or n to name the candidate." })),
+          : "No categories yet: press a to add one, or n to name the candidate." }), wrongToggle),
       note));
   }
 
@@ -664,6 +670,7 @@
     else if (key === "k" || key === "ArrowUp") previous();
     else if (key === "]") goStratum(app.s + 1);
     else if (key === "[") goStratum(app.s - 1);
+    else if (key === "w") toggle(row, app.state.wrong_label);
     else if (key === "r") { markReviewed(row); next(); }
     else if (key === "u") reset(row);
     else if (key === "e") { const n = document.getElementById(`note-${row}`); if (n) n.focus(); }

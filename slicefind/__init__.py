@@ -12,6 +12,7 @@ from slicefind.queue import Queue, build_queue
 from slicefind.slices import FoundSlices, find_slices
 from slicefind.table import SlicefindError, SlicefindTypeError, SlicefindValueError, WorkspaceBusyError
 from slicefind.tally import Tally, read_reviews, tally
+from slicefind.text import embed_texts, text_features
 from slicefind.workspace import Workspace, data_fingerprint
 
 try:
@@ -31,6 +32,8 @@ __all__ = [
     "compare",
     "Comparison",
     "describe_slice",
+    "embed_texts",
+    "text_features",
     "SliceDescription",
     "Workspace",
     "data_fingerprint",

@@ -413,6 +413,10 @@ def _scan_options(found: FoundSlices, scan_options: Mapping[str, Any]) -> dict[s
                    f"for the after scan.{_suggest(key, sorted(allowed))}")
             raise SlicefindTypeError(msg)
     options = {k: found.params[k] for k in _REUSED_SCAN_OPTIONS if k in found.params}
+    if found.params.get("text_method") in ("lsa", "sentence-transformers"):   # embedded again, the same way
+        options.update(text=found.params["text"], text_features=bool(found.params.get("text_features", True)))
+        if found.params.get("text_method") == "sentence-transformers":
+            options["text_model"] = found.params.get("text_model")
     options.update(scan_options)
     return options
 

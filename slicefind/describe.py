@@ -14,6 +14,7 @@ import pandas as pd
 
 from slicefind import bitset
 from slicefind.table import EvalTable, SlicefindTypeError, SlicefindValueError, _suggest
+from slicefind.text import TOKEN_PATTERN, class_tfidf
 
 __all__ = [
     "SliceDescription",
@@ -236,34 +237,15 @@ def distinctive_terms(texts, rows: np.ndarray, *, top: int = 10, random_state=0)
         rest = np.sort(np.random.default_rng(random_state).choice(rest, _MAX_TEXT_ROWS, replace=False))
     inside_rows = rows if rows.size <= _MAX_TEXT_ROWS else np.sort(
         np.random.default_rng(random_state).choice(rows, _MAX_TEXT_ROWS, replace=False))
-    columns = ["term", "weight", "n_slice", "n_rest"]
-    empty = pd.DataFrame({"term": pd.Series(dtype=object), "weight": pd.Series(dtype=float),
-                          "n_slice": pd.Series(dtype=np.int64), "n_rest": pd.Series(dtype=np.int64)})
     docs = [" ".join(texts[inside_rows]), " ".join(texts[rest])]
-    vectorizer = CountVectorizer(token_pattern=r"(?u)\b\w\w+\b", lowercase=True)
+    vectorizer = CountVectorizer(token_pattern=TOKEN_PATTERN, lowercase=True)
     try:
         counts = vectorizer.fit_transform(docs).toarray().astype(np.float64)
     except ValueError:                       # no term at all (empty texts)
-        return empty
+        return class_tfidf(np.zeros(0), np.zeros(0), np.array([], dtype=object), top=top)
     # rest counts rescaled to the full rest when it was sampled
-    scale = (n - rows.size) / max(rest.size, 1)
-    counts[1] *= scale
-    words = counts.sum(axis=1)
-    tf = counts[0] / max(words[0], 1.0)
-    average = words.mean()
-    freq = counts.sum(axis=0)
-    weight = tf * np.log1p(average / np.maximum(freq, 1e-12))
-    terms = vectorizer.get_feature_names_out()
-    keep = counts[0] >= 2
-    order = np.lexsort((terms, -weight))
-    order = [i for i in order if keep[i]][:top]
-    # a term counts as distinct only when the slice uses it more than its share of words
-    order = [i for i in order if counts[0, i] / max(words[0], 1) > counts[1, i] / max(words[1], 1)]
-    if not order:
-        return empty
-    return pd.DataFrame({"term": terms[order], "weight": weight[order],
-                         "n_slice": counts[0, order].round().astype(np.int64),
-                         "n_rest": counts[1, order].round().astype(np.int64)})[columns]
+    counts[1] *= (n - rows.size) / max(rest.size, 1)
+    return class_tfidf(counts[0], counts[1], vectorizer.get_feature_names_out(), top=top)
 
 
 def exemplars(table: EvalTable, rows: np.ndarray, *, coords=None, n_exemplars: int = 6,
@@ -413,7 +395,8 @@ def describe_slice(found, slice_id: str, *, text_column: str | None = None, n_ex
     slice_id : str
         ``"R1"``, ``"C2"``, ...
     text_column : str, optional
-        A column of free text (mined or not) whose distinctive terms to list.
+        A column of free text (mined or not) whose distinctive terms to list; default
+        the scan's ``text=`` column, when it had one.
     n_exemplars : int, default=6
         Rows to pick for a reviewer.
     top : int, default=5
@@ -441,6 +424,8 @@ def describe_slice(found, slice_id: str, *, text_column: str | None = None, n_ex
     table: EvalTable = found.eval_table
     user_rows = found.rows(slice_id)                        # raises for an unknown id
     rows = np.searchsorted(table.positions, user_rows).astype(np.intp)
+    if text_column is None and found.params.get("text") in table.data.columns:
+        text_column = found.params["text"]
     if text_column is not None and text_column not in table.data.columns:
         msg = f"text_column={text_column!r} is not a column of data.{_suggest(text_column, table.data.columns)}"
         raise SlicefindValueError(msg)
@@ -460,7 +445,10 @@ def describe_slice(found, slice_id: str, *, text_column: str | None = None, n_ex
     if source == "rule":
         summary = f"{record['description']}: {summary}"
     terms = None
-    if text_column is not None:
+    term_counts = found.extras.get("term_counts")
+    if term_counts is not None and text_column == found.params.get("text"):
+        terms = term_counts.distinctive(rows, top=2 * top)
+    elif text_column is not None:
         terms = distinctive_terms(table.data[text_column].to_numpy(), rows, top=2 * top,
                                   random_state=random_state)
     return SliceDescription(

@@ -19,6 +19,8 @@ from slicefind.rules import (ENGINES, RuleCounts, fold_into_refinements, refinem
                              rule_bits, search_rules)
 from slicefind.stats import SCORE_COLUMNS, bh_qvalues, fisher_greater, score_slices
 from slicefind.table import EvalTable, SlicefindTypeError, SlicefindValueError, build_eval_table
+from slicefind.text import TermCounts, check_texts, embed_column
+from slicefind.text import text_features as surface_features
 
 __all__ = ["Slice", "FoundSlices", "find_slices", "TABLE_COLUMNS", "default_min_rows",
            "jaccard"]
@@ -261,6 +263,9 @@ def find_slices(
     mine_label: bool = True,
     client=None,
     scores=None,
+    text: str | None = None,
+    text_model=None,
+    text_features: bool = True,
 ) -> FoundSlices:
     """Find groups of rows where the model errs more often than on the rest.
 
@@ -345,6 +350,20 @@ def find_slices(
         are tested against the scores' own calibration instead of the Fisher test of
         their error rate (suspected rows are errors by construction), then share the
         Benjamini–Hochberg step and the selection with every other candidate.
+    text : str, optional
+        A column of free text (messages, documents, generated answers); needs a pandas
+        DataFrame. Without ``embeddings``, the clusters are fitted on vectors computed
+        from it (`slicefind.text.embed_texts`; ``found.extras["text"]`` says how). With
+        ``text_features``, its surface features (`slicefind.text.text_features`:
+        ``"<text>.tokens"``, ``"<text>.has_url"``, ...) are mined like any other column.
+        The column itself is not mined, and `describe_slice` lists its distinctive terms.
+    text_model : None, str or callable, optional
+        How ``text`` becomes vectors: None for TF-IDF + truncated SVD fitted on the
+        table (seeded by ``random_state``), a folder holding a sentence-transformers
+        model (``pip install "slicefind[text]"``; nothing is downloaded), or a callable
+        ``texts -> (n, d) array``.
+    text_features : bool, default=True
+        Mine the surface features of ``text``.
 
     Returns
     -------
@@ -399,6 +418,14 @@ def find_slices(
         score_cols = score_columns(scores, data.columns)
         exclude = exclude + tuple(c for c in score_cols if c not in exclude)
     label_check = None
+    text_record = term_counts = None
+    if text is not None:
+        data, embeddings, text_record, term_counts = _with_text(
+            data, text, text_model, text_features, embeddings, random_state,
+            dask=is_dask_frame(data) or client is not None)
+        exclude = exclude + ((text,) if text not in exclude else ())
+    elif text_model is not None:
+        raise SlicefindValueError("text_model= needs text=, the column of text to embed.")
 
     if is_dask_frame(data):
         if engine != "bitset":
@@ -427,6 +454,8 @@ def find_slices(
                                  id_column=id_column, mine_label=mine_label)
         n, k_total = table.n_rows, table.n_errors
         min_rows, min_errors = rows_for(n), errors_for(n, k_total, rows_for(n))
+        if term_counts is not None and term_counts.n_rows != n:
+            term_counts = term_counts.take(table.positions)      # the analysed rows only
         if scores is not None:
             from slicefind.labelcheck import label_check_slices
 
@@ -445,12 +474,12 @@ def find_slices(
         def rule_bitset(terms: np.ndarray) -> np.ndarray:
             return rule_bits(items.bits, np.asarray(terms)[None, :])[0]
 
-    where, text = _rule_candidates(items, counts)
+    where, rule_text = _rule_candidates(items, counts)
     n_rules = len(where)
     rule_rows = np.concatenate(counts.n_rows) if n_rules else np.zeros(0, np.int64)
     rule_errs = np.concatenate(counts.n_errors) if n_rules else np.zeros(0, np.int64)
 
-    tested = pd.DataFrame({"description": text, "source": "rule",
+    tested = pd.DataFrame({"description": rule_text, "source": "rule",
                            "n_terms": np.array([w + 1 for w, _ in where], dtype=np.int64)})
     scores = score_slices(rule_rows, rule_errs, n, k_total, confidence_level=confidence_level)
     for column in SCORE_COLUMNS:
@@ -581,6 +610,10 @@ def find_slices(
     out = tested.loc[kept].reset_index(drop=True)
     out.insert(0, "slice_id", out.pop("slice_id"))
     is_cluster = out["source"] != "rule"
+    if term_counts is not None and is_cluster.any():
+        out.loc[is_cluster, "description"] = [
+            _with_words(text_, term_counts, bitset.to_rows(kept_bits[i], n))
+            for i, text_ in zip(np.flatnonzero(is_cluster.to_numpy()), out.loc[is_cluster, "description"])]
     out.loc[is_cluster, "description"] = [
         f"{src.replace('_', ' ')} {sid}: {text_}" for src, sid, text_ in
         zip(out.loc[is_cluster, "source"], out.loc[is_cluster, "slice_id"], out.loc[is_cluster, "description"])]
@@ -598,6 +631,11 @@ def find_slices(
                   merge_jaccard=merge_jaccard, distinct_jaccard=distinct_jaccard, max_share=max_share,
                   mine_label=mine_label, label_column=table.columns_used.get("label", "label"),
                   prediction_column=table.columns_used.get("prediction", "prediction"))
+    if text is not None:
+        params.update(text=text, text_features=bool(text_features),
+                      text_model=None if text_record is None else text_record.model,
+                      text_method="given embeddings" if text_record is None else text_record.method)
+        cluster_extra.update(text=text_record, term_counts=term_counts)
     if label_check is not None:
         from slicefind.labelcheck import params_summary
 
@@ -607,6 +645,42 @@ def find_slices(
         params["label_check"] = params_summary(label_check, label_ids)
     return FoundSlices(table=table_df, tested=tested, eval_table=table, params=params,
                        _rows=slice_rows, extras={"items": items, "counts": counts, **cluster_extra})
+
+
+def _with_text(data, text, text_model, text_features, embeddings, random_state, *, dask: bool):
+    """`find_slices`' text column: (data with its surface features, embeddings, how they
+    were made or None when given, the texts' word counts)."""
+    if dask:
+        raise SlicefindValueError("text= needs an in-memory pandas DataFrame; with a Dask DataFrame, "
+                                  "compute the vectors first and pass embeddings=.")
+    if not isinstance(data, pd.DataFrame):
+        raise SlicefindTypeError(f"data must be a pandas DataFrame with text=; got {type(data).__name__}.")
+    if not isinstance(text_features, (bool, np.bool_)):
+        raise SlicefindTypeError(f"text_features must be True or False; got {text_features!r}.")
+    if embeddings is not None and text_model is not None:
+        raise SlicefindValueError("give embeddings= or text_model=, not both: text_model= says how to "
+                                  "compute the embeddings from the text.")
+    texts = check_texts(data, text)
+    if text_features:
+        features = surface_features(texts, prefix=text)
+        clash = [c for c in features.columns if c in data.columns]
+        if clash:
+            msg = (f"data already has a column {clash[0]!r}, the name of a surface feature of "
+                   f"text={text!r}; rename it or pass text_features=False.")
+            raise SlicefindValueError(msg)
+    counts = TermCounts(texts)
+    record = None
+    if embeddings is None:
+        embeddings, record = embed_column(texts, text, text_model, counts=counts, random_state=random_state)
+    if text_features:
+        data = pd.concat([data, features.set_axis(data.index)], axis=1)
+    return data, embeddings, record, counts
+
+
+def _with_words(description: str, term_counts: TermCounts, rows: np.ndarray, top: int = 4) -> str:
+    """A cluster's description, led by the distinctive words of its texts."""
+    words = term_counts.distinctive(rows, top=top)["term"].tolist()
+    return f"words {', '.join(words)}; {description}" if words else description
 
 
 def _bh_cutoff(p: np.ndarray, q: np.ndarray, fdr: float) -> float:

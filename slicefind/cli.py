@@ -32,6 +32,9 @@ EXAMPLES = {
   slicefind scan dev.csv --label y --prediction p --embeddings emb.npy --id-column parcel_id --out ws
   slicefind scan scores.csv --loss loss --threshold 0.7 --out ws
   slicefind scan dev.csv --label digit --prediction read_as --scores p0 p1 p2 p3 p4 p5 p6 p7 p8 p9 --out ws
+  slicefind scan tickets.csv --label team --prediction routed --text-column message --embed-text --out ws
+  slicefind scan tickets.csv --label team --prediction routed --text-column message --embed-text \
+      --text-model models/minilm --out ws
   slicefind scan 'logs/*.parquet' --errors wrong --engine dask --out ws
   slicefind scan logs/ --label y --prediction p --engine dask --embeddings emb --out ws
   slicefind scan logs/ --errors wrong --engine dask --scheduler tcp://10.0.0.5:8786 --out ws""",
@@ -56,7 +59,8 @@ EXAMPLES = {
   slicefind report ws --out /tmp/report.html""",
     "demo": """examples:
   slicefind demo                          # writes ./slicefind-demo
-  slicefind demo --out /tmp/depot""",
+  slicefind demo --out /tmp/depot
+  slicefind demo --text                   # the help-desk text demo, ./slicefind-demo-text""",
 }
 
 
@@ -352,7 +356,8 @@ def _scan(found_kwargs, frame, ws_path, *, show=(), images=None, image_column=No
     from slicefind.workspace import Workspace, data_fingerprint
 
     step = step or _Step(3, quiet)
-    with step("finding slices (rules" + (" and embedding clusters)" if found_kwargs.get("embeddings") is not None else ")")):
+    clustered = found_kwargs.get("embeddings") is not None or found_kwargs.get("text") is not None
+    with step("finding slices (rules" + (" and embedding clusters)" if clustered else ")")):
         found = sf.find_slices(frame, **found_kwargs)
     with step("saving the scan"):
         ws = Workspace(ws_path)
@@ -364,8 +369,10 @@ def _scan(found_kwargs, frame, ws_path, *, show=(), images=None, image_column=No
         map_xy = getattr(clusters, "map_xy", None)
         if map_xy is not None:
             ws.save_artifact("map_xy", np.asarray(map_xy, dtype=np.float32))
+        descriptions = {}
         if found.extras.get("items") is not None and found.extras["items"].bits is not None:
-            ws.save_artifact("descriptions", _describe_top(found, text_column))
+            descriptions = _describe_top(found, text_column)
+            ws.save_artifact("descriptions", descriptions)
         ws.save_artifact("report", {"images": images, "image_column": image_column,
                                     "text_column": text_column, "data_folder": data_folder,
                                     "notes": list(notes)})
@@ -374,11 +381,21 @@ def _scan(found_kwargs, frame, ws_path, *, show=(), images=None, image_column=No
         print(f"{found.n_rows:,} rows, {found.n_errors:,} errors ({found.error_rate:.2%}); "
               f"{len(found.table)} slices pass FDR {found.params['fdr']} of {len(found.tested):,} tested.")
         _print_slices(found.table, top)
+        _print_words(descriptions, text_column or found.params.get("text"))
         _print_confusions(found)
         if found.eval_table.skipped:
             skipped = ", ".join(f"{c} ({r})" for c, r in list(found.eval_table.skipped.items())[:6])
             print(f"not mined: {skipped}")
     return ws, found
+
+
+def _print_words(descriptions, column, top: int = 6) -> None:
+    """The distinctive words of each described slice's texts, one line per slice."""
+    lines = [f"  {sid:5} {', '.join(d.terms['term'].head(top))}" for sid, d in descriptions.items()
+             if getattr(d, "terms", None) is not None and len(d.terms)]
+    if lines:
+        print(f"distinctive words of {column} (against the other rows):")
+        print("\n".join(lines))
 
 
 def _read_dask(pattern: str, scheduler: str | None):
@@ -437,7 +454,26 @@ def _dask_embeddings(value: str, frame):
     return names[0] if len(names) == 1 else names
 
 
+def _text_options(args) -> dict:
+    """find_slices' text= options from --embed-text, --text-model and --no-text-features."""
+    from slicefind.table import SlicefindValueError
+
+    if not args.embed_text:
+        given = [o for o, v in (("--text-model", args.text_model), ("--no-text-features", args.no_text_features)) if v]
+        if given:
+            raise SlicefindValueError(f"{given[0]} needs --embed-text (and --text-column COL).")
+        return {}
+    if not args.text_column:
+        raise SlicefindValueError("--embed-text needs --text-column COL, the column of text to embed.")
+    if args.engine == "dask":
+        raise SlicefindValueError("--embed-text runs in memory; with --engine dask, compute the vectors "
+                                  "first and pass --embeddings.")
+    return {"text": args.text_column, "text_model": args.text_model,
+            "text_features": not args.no_text_features}
+
+
 def cmd_scan(args) -> int:
+    text_kwargs = _text_options(args)          # checked before the data is read
     client = None
     if args.engine == "dask":
         frame, client = _read_dask(args.data, args.scheduler)
@@ -459,6 +495,7 @@ def cmd_scan(args) -> int:
                   engine="bitset" if args.engine == "dask" else args.engine)
     if client is not None:
         kwargs["client"] = client
+    kwargs.update(text_kwargs)
     if args.scores:                 # one column: the predicted class's probability
         kwargs["scores"] = args.scores[0] if len(args.scores) == 1 else list(args.scores)
     images = os.path.abspath(args.images) if args.images else None
@@ -738,41 +775,61 @@ def _simulated_reviews(queue, depot) -> pd.DataFrame:
 
 
 def cmd_demo(args) -> int:
-    import slicefind as sf
-    from slicefind.demodata import make_depot
-    from slicefind.tally import normalize_tag
-
-    out = args.out
+    out = args.out or ("slicefind-demo-text" if args.text else "slicefind-demo")
     os.makedirs(out, exist_ok=True)
     start = time.perf_counter()
     step = _Step(7)
-    with step(f"building the demo dev set ({args.rows:,} parcels read by a digit classifier)"):
-        depot = make_depot(args.rows, random_state=args.seed)
-        data_path = os.path.join(out, "depot.csv")
-        depot.frame.to_csv(data_path, index=False)
-        np.save(os.path.join(out, "embeddings.npy"), depot.embeddings)
-        np.save(os.path.join(out, "images.npy"), depot.images.astype(np.float32))
     ws_path = os.path.join(out, "workspace")
-    if os.path.exists(os.path.join(ws_path, "slicefind.sqlite")):
-        os.remove(os.path.join(ws_path, "slicefind.sqlite"))
-        for suffix in ("-wal", "-shm"):
-            if os.path.exists(os.path.join(ws_path, "slicefind.sqlite" + suffix)):
-                os.remove(os.path.join(ws_path, "slicefind.sqlite" + suffix))
-    kwargs = dict(label="label", prediction="pred", embeddings=depot.embeddings,
-                  id_column="parcel_id", random_state=args.seed)
-    notes = ("Demo data: a parcel depot reading handwritten digits (scikit-learn's bundled digits, "
-             "augmented and degraded on purpose). Planted: "
-             + "; ".join(f"{p.name} ({p.rows.size} rows, recorded in "
-                         f"{', '.join(p.columns) if p.columns else 'no column'})"
-                         for p in depot.planted.values()),)
-    ws, found = _scan(kwargs, depot.frame, ws_path, images=os.path.abspath(os.path.join(out, "images.npy")),
-                      notes=notes, step=step)
+    for suffix in ("", "-wal", "-shm"):          # a fresh workspace every run
+        if os.path.exists(os.path.join(ws_path, "slicefind.sqlite" + suffix)):
+            os.remove(os.path.join(ws_path, "slicefind.sqlite" + suffix))
+    if args.text:
+        from slicefind.demotext import make_helpdesk
+
+        with step(f"building the text demo ({args.rows:,} help-desk messages routed by a text classifier)"):
+            demo = make_helpdesk(args.rows, random_state=args.seed)
+            demo.frame.to_csv(os.path.join(out, "helpdesk.csv"), index=False)
+        kwargs = dict(label="team", prediction="routed", text="message", id_column="ticket_id",
+                      random_state=args.seed)
+        scenario = ("Demo data: a home-internet help desk whose router sends customer messages to five "
+                    "teams (invented messages from templates, a TF-IDF + logistic-regression router).")
+        shown = dict(text_column="message")
+    else:
+        from slicefind.demodata import make_depot
+
+        with step(f"building the demo dev set ({args.rows:,} parcels read by a digit classifier)"):
+            demo = make_depot(args.rows, random_state=args.seed)
+            demo.frame.to_csv(os.path.join(out, "depot.csv"), index=False)
+            np.save(os.path.join(out, "embeddings.npy"), demo.embeddings)
+            np.save(os.path.join(out, "images.npy"), demo.images.astype(np.float32))
+        kwargs = dict(label="label", prediction="pred", embeddings=demo.embeddings,
+                      id_column="parcel_id", random_state=args.seed)
+        scenario = ("Demo data: a parcel depot reading handwritten digits (scikit-learn's bundled digits, "
+                    "augmented and degraded on purpose).")
+        shown = dict(images=os.path.abspath(os.path.join(out, "images.npy")))
+    notes = (scenario + " Planted: " + "; ".join(
+        f"{p.name} ({p.rows.size} rows, recorded in {', '.join(p.columns) if p.columns else 'no column'})"
+        for p in demo.planted.values()),)
+    ws, found = _scan(kwargs, demo.frame, ws_path, notes=notes, step=step, **shown)
+    report, result = _simulated_loop(ws, found, demo, out, seed=args.seed, step=step)
+    print()
+    print("Tally from the SIMULATED reviewer (demo only):")
+    _print_tally(result)
+    print(f"\ndemo finished in {time.perf_counter() - start:.1f} s; report: {os.path.abspath(report)}")
+    return 0
+
+
+def _simulated_loop(ws, found, demo, out, *, seed, step):
+    """The demo after its scan: queue, the simulated reviewer's tags and names, tally, report."""
+    import slicefind as sf
+    from slicefind.tally import normalize_tag
+
     with step("drawing the review queue (100 errors)"):
-        queue = sf.build_queue(found, budget=100, rest=20, random_state=args.seed)
+        queue = sf.build_queue(found, budget=100, rest=20, random_state=seed)
         ws.save_queue(queue)
-        queue.to_csv(os.path.join(ws_path, "queue.csv"), overwrite=True)
+        queue.to_csv(os.path.join(ws.path, "queue.csv"), overwrite=True)
     with step("SIMULATED reviewer tags the queue from the planted ground truth"):
-        sheet = _simulated_reviews(queue, depot)
+        sheet = _simulated_reviews(queue, demo)
         sheet_path = os.path.join(out, "reviewed_simulated.csv")
         _write_csv(sheet, sheet_path)
         ws.import_sheet(sheet_path, source="simulated reviewer")
@@ -783,14 +840,10 @@ def cmd_demo(args) -> int:
                 ws.set_name(stratum, normalize_tag(pd.Series(tags).mode().iloc[0]), source="simulated reviewer")
     with step("tally and report"):
         result = ws.tally()
-        _write_tally_files(result, ws_path)
+        _write_tally_files(result, ws.path)
         ws.save_artifact("report", {**ws.load_artifact("report", default={}), "simulated_review": True})
         report = _write_report(ws, found, tally_result=result, simulated=True)
-    print()
-    print("Tally from the SIMULATED reviewer (demo only):")
-    _print_tally(result)
-    print(f"\ndemo finished in {time.perf_counter() - start:.1f} s; report: {os.path.abspath(report)}")
-    return 0
+    return report, result
 
 
 def _add_scan_options(p):
@@ -817,6 +870,14 @@ def _add_scan_options(p):
     p.add_argument("--images", metavar="FILE.npy", help="pixel arrays (n, h, w) for thumbnails")
     p.add_argument("--image-column", metavar="COL", help="column of image file paths for thumbnails")
     p.add_argument("--text-column", metavar="COL", help="free-text column to show and describe")
+    p.add_argument("--embed-text", action="store_true",
+                   help="with --text-column: cluster vectors computed from the text (TF-IDF + SVD unless "
+                        "--text-model) and mine its surface features (length, digits, URL, ...)")
+    p.add_argument("--text-model", metavar="PATH",
+                   help="with --embed-text: a sentence-transformers model folder on disk (pip install "
+                        "\"slicefind[text]\"); nothing is downloaded")
+    p.add_argument("--no-text-features", action="store_true",
+                   help="with --embed-text: do not mine the text's surface features")
     p.add_argument("--max-terms", type=_int_at_least(1), default=3, help="most conditions per rule (default 3)")
     p.add_argument("--min-rows", type=_int_at_least(1), default=None, help="fewest rows per slice (default max(20, 0.5%%))")
     p.add_argument("--fdr", type=_fraction(), default=0.05, help="false discovery rate (default 0.05)")
@@ -908,9 +969,12 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--out", default=None, help="write the report here instead")
     p.set_defaults(func=cmd_report)
 
-    p = sub.add_parser("demo", help="the whole loop on the built-in depot data", epilog=EXAMPLES["demo"],
+    p = sub.add_parser("demo", help="the whole loop on built-in data (parcel digits; --text: help-desk messages)", epilog=EXAMPLES["demo"],
                        formatter_class=fmt)
-    p.add_argument("--out", default="slicefind-demo", help="folder to write (default ./slicefind-demo)")
+    p.add_argument("--out", default=None,
+                   help="folder to write (default ./slicefind-demo, or ./slicefind-demo-text with --text)")
+    p.add_argument("--text", action="store_true",
+                   help="the help-desk text demo: messages routed to teams, embeddings from the text")
     p.add_argument("--rows", type=_int_at_least(100), default=6000, help="dev-set size (default 6000)")
     p.add_argument("--seed", type=_int_at_least(0), default=0)
     p.set_defaults(func=cmd_demo)

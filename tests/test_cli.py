@@ -111,3 +111,60 @@ def test_demo_runs_the_whole_loop(tmp_path):
     names = set(verdicts.loc[verdicts["verdict"] == "confirmed", "name"])
     assert {"faded thermal print", "ink smear", "packing tape"} == names
     assert "SIMULATED reviewer" in report.read_text(encoding="utf-8")
+
+
+def test_text_demo_runs_the_whole_loop(tmp_path):
+    """`slicefind demo --text` finds the planted failure modes of the help desk from the text alone."""
+    out = tmp_path / "desk"
+    result = subprocess.run([sys.executable, "-m", "slicefind.cli", "demo", "--text", "--out", str(out)],
+                            capture_output=True, text=True, timeout=300)
+    assert 0 == result.returncode, result.stderr[-2000:]
+    assert "distinctive words of message (against the other rows):" in result.stdout
+    verdicts = pd.read_csv(out / "workspace" / "verdicts.csv")
+    names = set(verdicts["name"].dropna())
+    confirmed = set(verdicts.loc[verdicts["verdict"] == "confirmed", "name"])
+    assert {"forwarded thread", "second language", "moving house", "sms cut short"} <= names
+    assert {"forwarded thread", "second language", "moving house"} <= confirmed
+    assert (out / "helpdesk.csv").exists()
+    assert "<mark>" in (out / "workspace" / "report.html").read_text(encoding="utf-8")
+
+
+def _messages_csv(folder):
+    frame = pd.DataFrame({"message": ["parcel lost in the depot", "refund the double charge",
+                                      "router light is red", "cancel my contract"] * 60,
+                          "team": ["depot", "billing", "outage", "cancel"] * 60})
+    frame["routed"] = frame["team"].where(np.arange(len(frame)) % 7 != 0, "billing")
+    path = os.path.join(folder, "messages.csv")
+    frame.to_csv(path, index=False)
+    return path
+
+
+@pytest.mark.parametrize("extra, message", [
+    (["--embed-text"], "--embed-text needs --text-column COL"),
+    (["--text-column", "message", "--text-model", "m"], "--text-model needs --embed-text"),
+    (["--text-column", "message", "--no-text-features"], "--no-text-features needs --embed-text"),
+    (["--text-column", "mesage", "--embed-text"], "text='mesage' is not a column of data. Did you mean 'message'?"),
+    (["--text-column", "message", "--embed-text", "--text-model", "no/such/folder"],
+     "text_model='no/such/folder' does not exist"),
+])
+def test_text_options_are_checked(tmp_path, capsys, extra, message):
+    data = _messages_csv(str(tmp_path))
+    code = main(["scan", data, "--label", "team", "--prediction", "routed", "--out", str(tmp_path / "ws"), *extra])
+    assert (1, True) == (code, message in capsys.readouterr().err)
+    assert not os.path.exists(tmp_path / "ws" / "slices.csv")
+
+
+def test_scan_embed_text(tmp_path, capsys):
+    """scan --text-column --embed-text clusters the text and stores the column for the review page."""
+    data = _messages_csv(str(tmp_path))
+    ws = str(tmp_path / "ws")
+    assert 0 == main(["scan", data, "--label", "team", "--prediction", "routed", "--text-column", "message",
+                      "--embed-text", "--out", ws])
+    out = capsys.readouterr().out
+    assert "finding slices (rules and embedding clusters)" in out
+    from slicefind.workspace import Workspace
+
+    with Workspace(ws, create=False) as w:
+        found = w.load_found()
+        assert ("message", "lsa") == (found.params["text"], found.params["text_method"])
+        assert "message" in found.eval_table.data.columns

@@ -19,6 +19,7 @@ import numpy as np
 import pandas as pd
 
 from slicefind.describe import label_column, prediction_column, value_text
+from slicefind.text import mark_terms
 
 __all__ = ["ReportInputs", "render_report", "write_report", "CAUTIONS", "MAX_SLICES_SHOWN",
            "PALETTE"]
@@ -194,6 +195,24 @@ def _table(frame: pd.DataFrame, spec: Sequence[tuple[str, str, str]], css: str =
     return f"<table class='{css}'><thead><tr>{head}</tr></thead><tbody>{''.join(body)}</tbody></table>"
 
 
+def _term_list(description, top: int = 8) -> list[str]:
+    """The distinctive terms of a SliceDescription, [] when it has none."""
+    terms = getattr(description, "terms", None)
+    return [] if terms is None or not len(terms) else [str(t) for t in terms["term"].head(top)]
+
+
+def marked_html(text, terms: Sequence[str], limit: int = 280) -> str:
+    """`text` (untrusted) as escaped HTML, cut to `limit` characters, its `terms` in ``<mark>``.
+
+    Examples
+    --------
+    >>> marked_html("<b>Fwd</b>: lost", ["fwd"])
+    '&lt;b&gt;<mark>Fwd</mark>&lt;/b&gt;: lost'
+    """
+    return "".join(f"<mark>{html.escape(piece)}</mark>" if marked else html.escape(piece)
+                   for marked, piece in mark_terms(text, terms, limit=limit))
+
+
 def _exemplar_cells(found, description, inputs: ReportInputs) -> str:
     """Thumbnails or text snippets of one slice's exemplars."""
     table = found.eval_table
@@ -208,7 +227,7 @@ def _exemplar_cells(found, description, inputs: ReportInputs) -> str:
             visual = (f"<img class='thumb' alt='row {row}' src='{uri}'>" if uri else
                       f"<div class='missing'>{html.escape(str(inputs.image_paths[row]))}</div>")
         elif inputs.texts is not None and row < len(inputs.texts):
-            visual = f"<div class='snippet'>{html.escape(str(inputs.texts[row])[:280])}</div>"
+            visual = f"<div class='snippet'>{marked_html(inputs.texts[row], _term_list(description))}</div>"
         ident = ""
         if table.id_column and table.id_column in ex:
             ident = f"{html.escape(str(ex[table.id_column]))} · "
@@ -216,7 +235,8 @@ def _exemplar_cells(found, description, inputs: ReportInputs) -> str:
         if ex.get("label") is not None and not pd.isna(ex.get("label")):
             label = f"{html.escape(str(ex['label']))} → {html.escape(str(ex['prediction']))}"
         mark = "error" if bool(ex["error"]) else "correct"
-        cells.append(f"<figure class='ex {mark}'>{visual}<figcaption>{ident}row {row}<br>"
+        kind = " text" if visual.startswith("<div class='snippet'>") else ""
+        cells.append(f"<figure class='ex {mark}{kind}'>{visual}<figcaption>{ident}row {row}<br>"
                      f"{label} <span class='{mark}'>{mark}</span></figcaption></figure>")
     return "".join(cells)
 
@@ -238,9 +258,11 @@ td.int,td.pct,td.p,td.f1,td.f2{text-align:right;font-variant-numeric:tabular-num
 tr:nth-child(even) td{background:#fafbfc} .small{font-size:.8em;color:#52606d}
 .slice{border:1px solid #d9e2ec;border-radius:8px;padding:10px 14px;margin:12px 0}
 .ex{display:inline-block;margin:4px;text-align:center;font-size:.75em;width:108px;vertical-align:top}
+.ex.text{width:280px}
 .thumb{width:64px;height:64px;image-rendering:pixelated;border:1px solid #bcccdc}
 .ex .error{color:#d1495b;font-weight:600} .ex .correct{color:#3b6e8f}
 .snippet{font-size:.85em;text-align:left;background:#f5f7fa;padding:4px;max-height:90px;overflow:auto}
+.snippet mark{background:#fde9a9;padding:0 1px}
 .verdict-confirmed{color:#00798c;font-weight:700} .verdict-rejected{color:#d1495b;font-weight:700}
 .verdict-undecided{color:#8d6a9f;font-weight:700} img.figure{max-width:100%}
 """
@@ -347,6 +369,8 @@ def render_report(found, inputs: ReportInputs | None = None) -> str:
                          f"{html.escape(desc.summary)}"
                          + (f"<div class='small'>commonest confusions ({html.escape(names)}): "
                             f"{html.escape(conf)}</div>" if conf else "")
+                         + (f"<div class='small terms'>distinctive words (marked below): "
+                            f"{html.escape(', '.join(_term_list(desc)))}</div>" if _term_list(desc) else "")
                          + f"<div>{_exemplar_cells(found, desc, inputs)}</div></div>")
 
     result = inputs.tally

@@ -69,6 +69,7 @@ from slicefind.queue import QUEUE_COLUMNS, REST
 from slicefind.table import (SlicefindError, SlicefindTypeError, SlicefindValueError,
                              WorkspaceBusyError)
 from slicefind.tally import UNTAGGED, WRONG_LABEL, normalize_tag
+from slicefind.text import mark_terms
 
 __all__ = ["ReviewServer", "make_server", "serve", "MAX_JSON_BYTES", "MAX_JSON_DEPTH",
            "MAX_SHEET_BYTES", "MAX_TAG_LENGTH", "IMAGE_TYPES", "CATEGORIES_ARTIFACT", "SOURCE"]
@@ -100,6 +101,10 @@ _BUSY_RETRY_S = 2                        # Retry-After of a 503 (workspace busy)
 _GONE = (BrokenPipeError, ConnectionResetError, ConnectionAbortedError, socket.timeout)
 _JSON_TOKENS = re.compile(rb'[\[\]{}"\\]')
 _N_EXEMPLARS = 6
+#: distinctive terms marked in a candidate's texts
+_N_TERMS = 8
+#: characters of a row's text the page shows (the rest is cut, with "…")
+MAX_TEXT_SHOWN = 4000
 _SECURITY_HEADERS = {
     "Cache-Control": "no-store",
     "X-Content-Type-Options": "nosniff",
@@ -386,15 +391,22 @@ class _ReviewApp:
                 picked = exemplars(table, rows, n_exemplars=_N_EXEMPLARS, random_state=0)
             stats = {f"slice_{k}": _clean(record.get(k)) for k in
                      ("n_rows", "error_rate", "ci_low", "ci_high")}
-            out[sid] = {"summary": summary, **stats,
-                        "exemplars": [self._example(int(r)) | {"kind": _clean(k), "error": _clean(e)}
+            found_terms = getattr(description, "terms", None)
+            terms = ([str(t) for t in found_terms["term"].head(_N_TERMS)]
+                     if isinstance(found_terms, pd.DataFrame) and "term" in found_terms.columns else [])
+            out[sid] = {"summary": summary, **stats, "terms": terms,
+                        "exemplars": [self._example(int(r), terms) | {"kind": _clean(k), "error": _clean(e)}
                                       for r, k, e in zip(picked["row"],
                                                          picked.get("kind", ["random"] * len(picked)),
                                                          picked.get("error", [None] * len(picked)))]}
         return out
 
-    def _example(self, row: int) -> dict:
-        """What any row shows: id, label, prediction, text, and whether it has a thumbnail."""
+    def _example(self, row: int, terms: Sequence[str] = ()) -> dict:
+        """What any row shows: id, label, prediction, text, and whether it has a thumbnail.
+
+        With `terms`, ``text_parts`` cuts the text into ``[marked, piece]`` pairs
+        (`slicefind.text.mark_terms`) that the page inserts as text, never as HTML.
+        """
         table = self.found.eval_table
         at = self._by_position.get(row)
         info: dict[str, Any] = {"row": row}
@@ -409,6 +421,8 @@ class _ReviewApp:
             info["prediction"] = _clean(table.prediction[at])
         if self.text_column:
             info["text"] = _clean(table.data[self.text_column].iat[at])
+            if terms and isinstance(info["text"], str):
+                info["text_parts"] = [[m, p] for m, p in mark_terms(info["text"], terms, limit=MAX_TEXT_SHOWN)]
         info["has_image"] = self._has_image(row)
         return info
 
@@ -495,13 +509,14 @@ class _ReviewApp:
             rows = []
             for line in _records(queue.table):
                 row = int(line["row"])
-                info = self._example(row)
+                info = self._example(row, self._descriptions.get(line["stratum"], {}).get("terms", ()))
                 item = {"position": line["position"], "stratum": line["stratum"], "row": row,
                         "id": line.get("id"), "label": line.get("label"),
                         "prediction": line.get("prediction"),
                         "meta": {c: line[c] for c in extra
                                  if c not in (self.text_column, self.image_column)},
-                        "text": info.get("text"), "has_image": info["has_image"]}
+                        "text": info.get("text"), "text_parts": info.get("text_parts"),
+                        "has_image": info["has_image"]}
                 if self.image_column:
                     item["image_path"] = line.get(self.image_column)
                 rows.append(item)

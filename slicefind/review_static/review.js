@@ -376,7 +376,11 @@
         src: `img/${item.row}`, alt: `image of row ${item.row}`, loading: "lazy", decoding: "async" });
     }
     if (item.text !== null && item.text !== undefined && item.text !== "") {
-      return el("blockquote", { class: `text${big ? " big" : ""}`, text: String(item.text) });
+      // text_parts: [marked, piece] pairs from the server; every piece goes in as text, never as HTML
+      const parts = Array.isArray(item.text_parts) && item.text_parts.length
+        ? item.text_parts.map(([marked, piece]) => (marked ? el("mark", { text: piece }) : piece))
+        : [String(item.text)];
+      return el("blockquote", { class: `text${big ? " big" : ""}` }, parts);
     }
     return el("div", { class: "novisual", text: "no image or text stored" });
   }

@@ -21,7 +21,7 @@ import pandas as pd
 from slicefind.describe import label_column, prediction_column, value_text
 from slicefind.text import mark_terms
 
-__all__ = ["ReportInputs", "render_report", "write_report", "CAUTIONS", "MAX_SLICES_SHOWN",
+__all__ = ["ReportInputs", "render_report", "write_report", "CAUTIONS", "TEXT_CAUTION", "MAX_SLICES_SHOWN",
            "PALETTE"]
 
 #: slices listed in the table (all passing slices are in slices.csv)
@@ -42,6 +42,10 @@ CAUTIONS = (
     "Small samples give wide intervals, and the intervals here say so: read the bounds, "
     "not only the estimates.",
 )
+
+#: shown when the report quotes a text column
+TEXT_CAUTION = ("This report quotes rows of a text column as they were written, and messages often hold "
+                "names, addresses and numbers: share it only as far as you would share the data.")
 
 
 @dataclass(frozen=True)
@@ -301,8 +305,9 @@ def render_report(found, inputs: ReportInputs | None = None) -> str:
                                                  for k, v in cards) + "</div>")
     for note in inputs.notes:
         parts.append(f"<p class='small'>{html.escape(note)}</p>")
+    cautions = CAUTIONS + ((TEXT_CAUTION,) if inputs.texts is not None else ())
     parts.append("<div class='caution'><b>Read with care.</b><ul>" +
-                 "".join(f"<li>{html.escape(c)}</li>" for c in CAUTIONS) + "</ul></div>")
+                 "".join(f"<li>{html.escape(c)}</li>" for c in cautions) + "</ul></div>")
 
     parts.append("<h2 id='slices'>Slices, ranked by excess errors</h2>")
     if len(slices):

@@ -2,7 +2,6 @@
 import os
 from html import escape
 import re
-import shutil
 import subprocess
 
 import numpy as np
@@ -11,6 +10,7 @@ import pytest
 
 import slicefind as sf
 from slicefind.describe import describe_slice
+from browser import chromium_or_skip
 from slicefind.report import CAUTIONS, ReportInputs, render_report, write_report
 
 
@@ -53,19 +53,9 @@ def test_report_without_slices_or_embeddings_says_so():
     assert "No embeddings were given" in html
 
 
-def _chromium():
-    for name in ("chromium", "chromium-browser", "google-chrome"):
-        path = shutil.which(name)
-        if path:
-            return path
-    return None
-
-
 def test_report_renders_in_headless_chromium(reviewed):
     """Debian's chromium loads the report offline: table, map and chart present, every image decoded."""
-    browser = _chromium()
-    if browser is None:
-        pytest.skip("chromium is not installed (apt-get install chromium); .ci/run installs it")
+    browser = chromium_or_skip("the report's browser test")
     found, inputs, folder = reviewed
     path = write_report(os.path.join(folder, "report.html"), found, inputs)
     args = [browser, "--headless", "--no-sandbox", "--disable-gpu", "--disable-background-networking",

@@ -15,6 +15,7 @@ import pandas as pd
 import pytest
 
 import slicefind as sf
+from browser import CHROMIUM_ARGS, chromium_or_skip
 from slicefind import review
 from slicefind.describe import describe_slice
 from slicefind.queue import build_queue
@@ -32,8 +33,6 @@ GLYPHS = {
 }
 #: where the browser test leaves its screenshots for a reviewer (also under pytest's tmp_path)
 SCREENSHOT = os.path.join(tempfile.gettempdir(), "slicefind-review.png")
-CHROMIUM_ARGS = ["--no-sandbox", "--disable-gpu", "--disable-background-networking",
-                 "--disable-component-update", "--disable-sync", "--no-first-run"]
 
 
 def _depot(n=2400, seed=7):
@@ -578,14 +577,6 @@ def test_serve_prints_the_url_and_stops_on_ctrl_c(workspace):
 # --- the page in a browser ------------------------------------------------------------------
 
 
-def _chromium_path():
-    for candidate in ("/usr/bin/chromium", shutil.which("chromium"), shutil.which("chromium-browser"),
-                      shutil.which("google-chrome")):
-        if candidate and os.path.exists(candidate):
-            return candidate
-    return None
-
-
 def _floats(text):
     return float("nan") if text in ("", None) else float(text)
 
@@ -596,10 +587,7 @@ def _same(a, b):
 
 def test_page_tags_with_keys_and_survives_a_reload(workspace, tmp_path):
     """Keys tag ten examples and add categories; after a reload, an export and an import all agree with the workspace."""
-    executable = _chromium_path()
-    if executable is None:
-        pytest.skip("Chromium not found (looked for /usr/bin/chromium and chromium, chromium-browser, "
-                    "google-chrome on PATH); install Debian's chromium to run the browser test.")
+    executable = chromium_or_skip("the review page's browser test")
     try:
         from playwright.sync_api import sync_playwright
     except ImportError:

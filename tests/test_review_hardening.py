@@ -19,7 +19,8 @@ from slicefind import review
 from slicefind.table import SlicefindValueError, WorkspaceBusyError
 from slicefind.workspace import Workspace
 # the depot workspace and request helpers of the review tests (fixtures are used by name)
-from test_review import (CHROMIUM_ARGS, _call, _chromium_path, _queued, _snapshot, depot,  # noqa: F401
+from browser import CHROMIUM_ARGS, chromium_or_skip
+from test_review import (_call, _queued, _snapshot, depot,  # noqa: F401
                          server, shared, template, workspace)
 
 BUSY = ("another process held the workspace's database for longer than 4 waits of the busy "
@@ -403,9 +404,7 @@ def test_page_keeps_a_change_the_busy_workspace_refused(workspace, monkeypatch):
     is marked not saved and the message shown, a refused category stays in its field, a note
     keeps its text and is sent again; once the workspace is free the note lands and the toggle,
     pressed again, too."""
-    executable = _chromium_path()
-    if executable is None:
-        pytest.skip("Chromium not found; install Debian's chromium to run the browser test.")
+    executable = chromium_or_skip("the busy-workspace browser test")
     try:
         from playwright.sync_api import expect, sync_playwright
     except ImportError:

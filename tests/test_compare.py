@@ -12,10 +12,12 @@ from slicefind.table import SlicefindTypeError, SlicefindValueError
 # REFERENCES.md §7, tables [[a, b], [c, d]]: b = right before & wrong after, c = the reverse.
 MCNEMAR_CASES = [
     # Fagerland, Lydersen & Laake (2013) BMC Med Res Methodol 13:91, Bentur et al.'s 21 children
-    # (AHR before/after transplant): exact two-sided 18/256 = 0.0703125 (M+T)
+    # (AHR before/after transplant): exact two-sided 18/256 = 0.0703125 (M+T: table and p-value
+    # recalled, not re-read; statsmodels mcnemar(exact=True) reproduces it, test below)
     ([[1, 1], [7, 12]], 18 / 256),
     # Agresti, An Introduction to Categorical Data Analysis (paired proportions), PM approval,
-    # 1600 people surveyed twice: exact two-sided 3.71594e-5 (REFERENCES §7, computed)
+    # 1600 people surveyed twice (table recalled, not re-read): exact two-sided 3.71594e-5
+    # computed by statsmodels (REFERENCES §7), no published exact p-value claimed
     ([[794, 150], [86, 570]], 3.71594e-5),
     # constructed (REFERENCES §7, tag C): b=1, c=9 -> 22/1024
     ([[0, 1], [9, 0]], 22 / 1024),

@@ -13,10 +13,15 @@ from slicefind.table import build_eval_table
 
 from strategies import small_tables
 
-# Han, Kamber & Pei, Data Mining: Concepts and Techniques, 3rd ed., Table 6.1 (AllElectronics)
+# Han, Kamber & Pei, Data Mining: Concepts and Techniques, 3rd ed. (2011), ch. 6, Table 6.1
+# (AllElectronics): the transactions are recalled, not re-read (many public copies agree;
+# REFERENCES.md §4, tag M+T)
 HKP = {"T100": "I1 I2 I5", "T200": "I2 I4", "T300": "I2 I3", "T400": "I1 I2 I4", "T500": "I1 I3",
        "T600": "I2 I3", "T700": "I1 I3", "T800": "I1 I2 I3 I5", "T900": "I1 I2 I3"}
-HKP_FREQUENT = {  # ibid., Apriori worked example, minimum support count 2
+# ibid., Apriori worked example, minimum support count 2: the 13 itemsets and their counts are
+# recalled, not re-read; mlxtend 0.25 apriori and fpgrowth reproduce them (REFERENCES.md §4, tag M;
+# see test_textbook_example_matches_mlxtend_apriori_directly)
+HKP_FREQUENT = {
     ("I1",): 6, ("I2",): 7, ("I3",): 6, ("I4",): 2, ("I5",): 2,
     ("I1", "I2"): 4, ("I1", "I3"): 4, ("I1", "I5"): 2, ("I2", "I3"): 4, ("I2", "I4"): 2,
     ("I2", "I5"): 2, ("I1", "I2", "I3"): 2, ("I1", "I2", "I5"): 2,
@@ -50,7 +55,7 @@ def test_textbook_apriori_example(engine):
 
 
 def test_textbook_example_min_count_3():
-    """At minimum count 3 the example keeps 6 itemsets (REFERENCES.md §4, computed with mlxtend)."""
+    """At minimum count 3 the example keeps 6 itemsets (REFERENCES.md §4, computed with mlxtend, tag C)."""
     names, items = _hkp_itemset()
     counts = search_rules(items, max_terms=4, min_rows=3, min_errors=3, n_errors=9)
     assert {("I1",): 6, ("I2",): 7, ("I3",): 6, ("I1", "I2"): 4, ("I1", "I3"): 4,
@@ -58,13 +63,16 @@ def test_textbook_example_min_count_3():
 
 
 def test_textbook_example_matches_mlxtend_apriori_directly():
-    """mlxtend's own apriori on the one-hot table gives the same 13 itemsets (mlxtend 0.25)."""
-    from mlxtend.frequent_patterns import apriori
+    """mlxtend's own apriori and fpgrowth on the one-hot table give the same 13 itemsets (mlxtend 0.25)."""
+    from mlxtend.frequent_patterns import apriori, fpgrowth
     onehot = pd.DataFrame([[n in t.split() for n in ["I1", "I2", "I3", "I4", "I5"]] for t in HKP.values()],
                           columns=["I1", "I2", "I3", "I4", "I5"])
     found = apriori(onehot, min_support=2 / 9, use_colnames=True)
     got = {tuple(sorted(s)): round(sup * 9) for s, sup in zip(found["itemsets"], found["support"])}
     assert HKP_FREQUENT == got
+    grown = fpgrowth(onehot, min_support=2 / 9, use_colnames=True)
+    assert HKP_FREQUENT == {tuple(sorted(s)): round(sup * 9)
+                            for s, sup in zip(grown["itemsets"], grown["support"])}
 
 
 def _brute_force(frame, errors, items, terms):

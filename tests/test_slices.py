@@ -4,7 +4,7 @@ import pandas as pd
 import pytest
 
 import slicefind as sf
-from slicefind.slices import TABLE_COLUMNS, default_min_rows
+from slicefind.slices import TABLE_COLUMNS, default_min_rows, jaccard
 
 
 def _depot(n=6000, seed=0, planted=True):
@@ -173,6 +173,44 @@ def test_overlap_is_jaccard():
     if len(ids) >= 2:
         a, b = set(found.rows(ids[0])), set(found.rows(ids[1]))
         assert len(a & b) / len(a | b) == pytest.approx(ov.loc[ids[0], ids[1]])
+
+
+def _masks(a, b, n=10):
+    """Boolean masks over n rows of the row sets a and b, for scikit-learn."""
+    mask_a, mask_b = np.zeros(n, dtype=bool), np.zeros(n, dtype=bool)
+    mask_a[list(a)] = True
+    mask_b[list(b)] = True
+    return mask_a, mask_b
+
+
+@pytest.mark.parametrize("a, b, expected", [
+    ([0, 1, 2, 3], [2, 3, 4], 2 / 5),                  # REFERENCES.md §9 (tag C): 2 shared, 5 in the union
+    # Leskovec, Rajaraman & Ullman, Mining of Massive Datasets, Example 3.1: SIM = 3/8
+    # (3 shared, 8 in the union; counts recalled, not re-read; the sets are constructed)
+    ([0, 1, 2, 3, 4], [2, 3, 4, 5, 6, 7], 3 / 8),
+    ([0, 1], [2, 3], 0.0),                             # disjoint (tag C)
+])
+def test_jaccard_reference_cases(a, b, expected):
+    """Jaccard of row sets matches REFERENCES.md §9 and scikit-learn's jaccard_score on masks."""
+    from sklearn.metrics import jaccard_score
+    got = jaccard(np.array(a), np.array(b))
+    assert expected == pytest.approx(got, abs=1e-15)
+    assert jaccard_score(*_masks(a, b)) == pytest.approx(got, abs=1e-15)   # scikit-learn 1.9
+    assert got == jaccard(np.array(b), np.array(a))                          # symmetric
+
+
+def test_jaccard_of_two_empty_sets_is_our_convention():
+    """Two empty row sets give 0.0: a convention, since J = 0/0 there (REFERENCES.md §9)."""
+    from scipy.spatial.distance import jaccard as jaccard_distance
+    from sklearn.metrics import jaccard_score
+    empty = np.array([], dtype=np.intp)
+    assert 0.0 == jaccard(empty, empty)
+    # The libraries disagree, so neither settles it: scikit-learn returns 0.0 (and warns unless
+    # zero_division is given), while scipy's distance is 0, i.e. similarity 1.
+    mask_a, mask_b = _masks([], [])
+    assert 0.0 == jaccard_score(mask_a, mask_b, zero_division=0.0)          # scikit-learn 1.9
+    assert 1.0 == 1.0 - jaccard_distance(mask_a, mask_b)                     # scipy 1.17
+    assert 0.0 == jaccard(empty, np.array([3, 4]))                          # one empty: 0 / 2
 
 
 @pytest.mark.parametrize("kwargs, fragment", [

@@ -1,4 +1,5 @@
 """Tests for slicefind.stats: Wilson intervals, one-sided Fisher, Benjamini–Hochberg, scoring."""
+import math
 from fractions import Fraction
 
 import numpy as np
@@ -18,15 +19,20 @@ def test_wilson_contains_estimate(k_n):
 
 
 @pytest.mark.parametrize("k, n, low, high", [
-    (81, 263, 0.2553, 0.3662),   # Newcombe (1998) Stat Med 17:857, Table I, method 3
-    (15, 148, 0.0624, 0.1605),   # ibid.
-    (0, 20, 0.0000, 0.1611),     # ibid.
-    (1, 29, 0.0061, 0.1718),     # ibid.
+    # Newcombe (1998) Stat Med 17:857, Table I, method 3 (recalled, not re-read; statsmodels
+    # proportion_confint(method="wilson") reproduces each row, REFERENCES.md §1, tag M+T)
+    (81, 263, 0.2553, 0.3662),
+    (15, 148, 0.0624, 0.1605),
+    (0, 20, 0.0000, 0.1611),
+    (1, 29, 0.0061, 0.1718),
 ])
 def test_wilson_matches_newcombe_table(k, n, low, high):
     """Bounds match Newcombe's Table I (method 3, Wilson without continuity correction)."""
+    from statsmodels.stats.proportion import proportion_confint
     got = wilson_interval(k, n)
     assert (low, high) == pytest.approx(got, abs=5e-5)
+    # the recalled row is also what statsmodels 0.15 computes
+    assert (low, high) == pytest.approx(proportion_confint(k, n, alpha=0.05, method="wilson"), abs=5e-5)
 
 
 def test_wilson_matches_statsmodels_and_scipy_vectorised():
@@ -59,16 +65,25 @@ def test_wilson_confidence_level_changes_width():
 
 def test_fisher_tea_tasting():
     """Fisher's tea table: 3 of 4 slice rows wrong vs 1 of 4 elsewhere gives p = 17/70."""
-    # Fisher (1935), The Design of Experiments, ch. II; REFERENCES.md §2
+    from scipy.stats import fisher_exact
+    # Fisher (1935), The Design of Experiments, ch. II: 17/70 and 1/70 (recalled, not re-read;
+    # scipy fisher_exact(alternative="greater") reproduces both, REFERENCES.md §2, tag M)
     assert float(Fraction(17, 70)) == pytest.approx(fisher_greater(3, 4, 4, 8), abs=1e-12)
     assert float(Fraction(1, 70)) == pytest.approx(fisher_greater(4, 4, 4, 8), abs=1e-12)
+    assert float(Fraction(17, 70)) == pytest.approx(
+        fisher_exact([[3, 1], [1, 3]], alternative="greater").pvalue, abs=1e-12)     # scipy 1.17
+    assert float(Fraction(1, 70)) == pytest.approx(
+        fisher_exact([[4, 0], [0, 4]], alternative="greater").pvalue, abs=1e-12)
 
 
 def test_fisher_vectorised_matches_scipy_fisher_exact():
     """The vectorised tail equals scipy.stats.fisher_exact(alternative='greater') per table."""
     from scipy.stats import fisher_exact
-    tables = [((3, 1), (1, 3)), ((10, 3), (2, 15)), ((20, 30), (80, 870)), ((6, 4), (9, 81)),
-              ((0, 10), (15, 75))]
+    tables = [((3, 1), (1, 3)),     # Fisher's tea tasting (recalled; see test_fisher_tea_tasting)
+              # Fisher (1935) JRSS 98:39, Lange's criminal twins: monozygotic 10 convicted / 3 not,
+              # dizygotic 2 / 15 (counts recalled, not re-read; REFERENCES.md §2, tag M)
+              ((10, 3), (2, 15)),
+              ((20, 30), (80, 870)), ((6, 4), (9, 81)), ((0, 10), (15, 75))]   # constructed (tag C)
     a = np.array([t[0][0] for t in tables])
     n = np.array([t[0][0] + t[0][1] for t in tables])
     k = np.array([t[0][0] + t[1][0] for t in tables])
@@ -76,21 +91,33 @@ def test_fisher_vectorised_matches_scipy_fisher_exact():
     got = fisher_greater(a, n, k, total)
     expected = [fisher_exact(t, alternative="greater").pvalue for t in tables]  # scipy 1.17
     assert np.allclose(expected, got, rtol=1e-9, atol=0)
-    # REFERENCES.md §2: twins 619/1330665; [[6,4],[9,81]] 0.000623503; [[20,30],[80,870]] 6.380389e-9
+    # REFERENCES.md §2: twins 619/1330665, the exact tail of the recalled counts (reproduced by
+    # scipy fisher_exact above and summed exactly here); [[6,4],[9,81]] 0.000623503 and
+    # [[20,30],[80,870]] 6.380389e-9 computed with scipy (tag C)
     assert 619 / 1330665 == pytest.approx(got[1], rel=1e-9)
+    twins = sum(Fraction(math.comb(12, x) * math.comb(18, 13 - x), math.comb(30, 13)) for x in range(10, 13))
+    assert Fraction(619, 1330665) == twins         # hypergeometric tail in exact rationals, no library
     assert 0.000623503 == pytest.approx(got[3], rel=1e-6)
     assert 6.380389e-9 == pytest.approx(got[2], rel=1e-6)
     assert 1.0 == got[4]
 
 
+# Benjamini & Hochberg (1995) JRSS-B 57:289, §4: the 15 sorted p-values of their example (recalled,
+# not re-read; the same values appear in many test suites; REFERENCES.md §3, tag M+T)
 BH_P = [0.0001, 0.0004, 0.0019, 0.0095, 0.0201, 0.0278, 0.0298, 0.0344, 0.0459,
         0.3240, 0.4262, 0.5719, 0.6528, 0.7590, 1.000]
 
 
 def test_bh_paper_example():
     """Benjamini & Hochberg (1995) §4: 15 p-values, 4 rejected at q = 0.05."""
+    from statsmodels.stats.multitest import multipletests
     q = bh_qvalues(BH_P)
+    # Benjamini & Hochberg (1995) JRSS-B 57:289, §4 example: 4 rejected at 0.05, Bonferroni 3
+    # (recalled, not re-read; statsmodels multipletests(method="fdr_bh") reproduces it,
+    # REFERENCES.md §3, tag M+T)
     assert 4 == int((q <= 0.05).sum())
+    assert 4 == int(multipletests(BH_P, alpha=0.05, method="fdr_bh")[0].sum())   # statsmodels 0.15
+    assert 3 == int((np.array(BH_P) <= 0.05 / 15).sum())                         # Bonferroni
     expected = [0.0015, 0.0030, 0.0095, 0.035625, 0.0603, 0.063857, 0.063857, 0.0645, 0.0765,
                 0.486, 0.581182, 0.714875, 0.753231, 0.813214, 1.0]   # REFERENCES.md §3 (C)
     assert expected == pytest.approx(q.tolist(), abs=5e-7)

@@ -18,7 +18,9 @@ from slicefind.stats import (cochran_sample_size, mover_sum_interval, score_sum_
 # --- Cochran's sample size (REFERENCES §5) ----------------------------------------------------
 
 @pytest.mark.parametrize("p, e, n0, rounded", [
-    (0.5, 0.05, 384.1459, 385),   # Cochran 1977 §4.4 (tag M, recalled): 385 for p=.5, e=.05, 95%
+    # Cochran, Sampling Techniques, 3rd ed. (1977) §4.4: 385 for p=.5, e=.05, 95% (recalled, not
+    # re-read; statsmodels samplesize_confint_proportion reproduces n0 = 384.1459, tag M)
+    (0.5, 0.05, 384.1459, 385),
     (0.5, 0.03, 1067.0719, 1068),  # computed (tag C): statsmodels 0.15 samplesize_confint_proportion
     (0.5, 0.10, 96.0365, 97),      # computed (tag C), same call
     (0.1, 0.05, 138.2925, 139),    # computed (tag C), same call
@@ -27,6 +29,7 @@ def test_cochran_n0_matches_reference(p, e, n0, rounded):
     """n0 = z^2 p q / e^2 matches REFERENCES §5 and rounds up to the tabulated size."""
     got = cochran_sample_size(p, e)
     assert n0 == pytest.approx(got, abs=5e-5)
+    assert n0 == pytest.approx(samplesize_confint_proportion(p, e, alpha=0.05), abs=5e-5)  # statsmodels 0.15
     assert rounded == math.ceil(got)
 
 
@@ -46,14 +49,37 @@ def test_cochran_fpc_table(N, ceil_n):
 
 
 @pytest.mark.parametrize("N, km", [
-    # Krejcie & Morgan 1970, Educ Psychol Meas 30:607 table (tag M, recalled in REFERENCES §5);
-    # their chi-square 3.841 and rounding to the nearest integer
+    # Krejcie & Morgan 1970, Educ Psychol Meas 30:607, table (recalled, not re-read, tag M in
+    # REFERENCES §5; no library applies the FPC, so their own formula, written out in the test,
+    # reproduces it); their chi-square 3.841 and rounding to the nearest integer
     (10, 10), (50, 44), (200, 132), (500, 217), (1000, 278), (2000, 322), (5000, 357),
     (20000, 377), (75000, 382)])
 def test_cochran_fpc_matches_krejcie_morgan(N, km):
     """With z^2 = 3.841 and nearest-integer rounding the formula reproduces K&M's table."""
     level = 2.0 * norm.cdf(math.sqrt(3.841)) - 1.0
     assert km == round(cochran_sample_size(0.5, 0.05, population=N, confidence_level=level))
+    # K&M's formula chi^2 N P(1-P) / (d^2 (N-1) + chi^2 P(1-P)), with P = .5 and d = .05
+    assert km == round(3.841 * N * 0.25 / (0.05 ** 2 * (N - 1) + 3.841 * 0.25))
+
+
+def test_cochran_fpc_form_told_apart_by_krejcie_morgan():
+    """K&M's entry for N = 100 is 80: Cochran's n0/(1+(n0-1)/N) gives it, n0/(1+n0/N) gives 79.
+
+    The other K&M entries in REFERENCES §5 (N = 10 ... 1,000,000) round the same under both
+    forms, so N = 100 is the one case there that can catch the wrong form.
+    """
+    level = 2.0 * norm.cdf(math.sqrt(3.841)) - 1.0          # K&M's chi-square 3.841, one d.f.
+    n0 = 3.841 * 0.25 / 0.05 ** 2                           # 384.1
+    got = cochran_sample_size(0.5, 0.05, population=100, confidence_level=level)
+    assert 79.5073 == pytest.approx(got, abs=5e-5)          # 38410 / 483.1, computed (tag C)
+    # Krejcie & Morgan (1970) table: 80 for N = 100 (recalled, not re-read; REFERENCES §5, tag M)
+    assert 80 == round(got)
+    other_form = n0 / (1 + n0 / 100)                        # the form many secondary texts use
+    assert 79.3431 == pytest.approx(other_form, abs=5e-5)
+    assert 79 == round(other_form)                          # so the check fails under that form
+    for N in (10, 50, 200, 500, 1000, 2000, 5000, 10000, 20000, 75000, 1000000):
+        cochran = round(cochran_sample_size(0.5, 0.05, population=N, confidence_level=level))
+        assert round(n0 / (1 + n0 / N)) == cochran
 
 
 @settings(max_examples=200, deadline=None)
@@ -76,12 +102,15 @@ def test_cochran_with_threshold_is_where_wilson_fpc_excludes_it(t, p, N):
 # --- Wilson with finite-population correction ------------------------------------------------
 
 @pytest.mark.parametrize("k, n, low, high", [
-    # Newcombe 1998, Stat Med 17:857, Table I, method 3 (tags M+T); statsmodels agrees
+    # Newcombe 1998, Stat Med 17:857, Table I, method 3 (recalled, not re-read, tags M+T;
+    # statsmodels proportion_confint(method="wilson") reproduces it)
     (81, 263, 0.2553, 0.3662), (15, 148, 0.0624, 0.1605), (0, 20, 0.0000, 0.1611),
     (1, 29, 0.0061, 0.1718)])
 def test_wilson_fpc_without_population_is_wilson(k, n, low, high):
     """With N=None the interval is Newcombe's method 3 (Wilson score, no correction)."""
     assert (low, high) == pytest.approx(wilson_interval_fpc(k, n), abs=5e-5)
+    assert (low, high) == pytest.approx(proportion_confint(k, n, alpha=0.05, method="wilson"),
+                                        abs=5e-5)                              # statsmodels 0.15
 
 
 def test_wilson_fpc_large_population_approaches_statsmodels_wilson():
@@ -128,7 +157,9 @@ def test_wilson_fpc_in_unit_interval_and_narrower(knN):
 # --- stratified proportion (REFERENCES §6, constructed cases, tag C) --------------------------
 
 @pytest.mark.parametrize("k, n, N, p_st, se_fpc, se_plain, total_se", [
-    # REFERENCES §6 case A; checked there against samplics 0.6.1 TaylorEstimator (tag C)
+    # REFERENCES §6 cases, all constructed (tag C, no published value), checked there against
+    # samplics 0.6.1 TaylorEstimator and the hand formula (recomputed in the test below).
+    # case A; a 400,000-replicate simulation there also agrees
     ([24, 5, 3], [30, 20, 25], [120, 60, 220], 0.3435, 0.0412334, 0.0452724, 16.4933),
     # case B: stratum 2 is a census; v = 0.0112 exactly
     ([3, 7], [10, 10], [40, 10], 0.38, 0.105830, 0.125963, 5.29150),
@@ -143,6 +174,18 @@ def test_stratified_proportion_matches_reference(k, n, N, p_st, se_fpc, se_plain
     assert se_fpc == pytest.approx(math.sqrt(v), abs=5e-7)
     assert se_plain == pytest.approx(math.sqrt(v_plain), abs=5e-7)
     assert total_se == pytest.approx(sum(N) * math.sqrt(v), abs=5e-4)
+    # the hand formula, an independent computation (Cochran ch. 5, stratified proportions):
+    # p_st = sum W_h p_h, v = sum W_h^2 (1 - n_h/N_h) p_h q_h / (n_h - 1), W_h = N_h / N
+    hand_p = hand_v = hand_v_plain = 0.0
+    for k_h, n_h, N_h in zip(k, n, N):
+        W, p_h = N_h / sum(N), k_h / n_h
+        hand_p += W * p_h
+        hand_v += W ** 2 * (1 - n_h / N_h) * p_h * (1 - p_h) / (n_h - 1)
+        hand_v_plain += W ** 2 * p_h * (1 - p_h) / (n_h - 1)
+    assert hand_p == pytest.approx(p, rel=1e-12)
+    assert hand_v == pytest.approx(v, rel=1e-12)
+    assert hand_v_plain == pytest.approx(v_plain, rel=1e-12)
+    assert se_fpc == pytest.approx(math.sqrt(hand_v), abs=5e-7)
 
 
 def test_stratified_proportion_case_a_terms():

@@ -761,19 +761,6 @@ def cmd_report(args) -> int:
     return 0
 
 
-def _simulated_reviews(queue, depot) -> pd.DataFrame:
-    """The demo's SIMULATED reviewer: tags each queued error with the planted degradations
-    that touched it (ground truth the real world never gives); other errors stay untagged."""
-    membership = {}
-    for name, planted in depot.planted.items():
-        for row in planted.rows.tolist():
-            membership.setdefault(int(row), []).append(name)
-    rows = queue.table["row"].astype(int).tolist()
-    return pd.DataFrame({"row": rows, "reviewed": 1,
-                         "tags": [";".join(sorted(membership.get(r, []))) for r in rows],
-                         "note": "simulated reviewer"})
-
-
 def cmd_demo(args) -> int:
     out = args.out or ("slicefind-demo-text" if args.text else "slicefind-demo")
     os.makedirs(out, exist_ok=True)
@@ -822,6 +809,7 @@ def cmd_demo(args) -> int:
 def _simulated_loop(ws, found, demo, out, *, seed, step):
     """The demo after its scan: queue, the simulated reviewer's tags and names, tally, report."""
     import slicefind as sf
+    from slicefind.demodata import simulated_reviews
     from slicefind.tally import normalize_tag
 
     with step("drawing the review queue (100 errors)"):
@@ -829,7 +817,7 @@ def _simulated_loop(ws, found, demo, out, *, seed, step):
         ws.save_queue(queue)
         queue.to_csv(os.path.join(ws.path, "queue.csv"), overwrite=True)
     with step("SIMULATED reviewer tags the queue from the planted ground truth"):
-        sheet = _simulated_reviews(queue, demo)
+        sheet = simulated_reviews(queue, demo.planted)
         sheet_path = os.path.join(out, "reviewed_simulated.csv")
         _write_csv(sheet, sheet_path)
         ws.import_sheet(sheet_path, source="simulated reviewer")

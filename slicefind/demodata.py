@@ -24,7 +24,8 @@ from typing import Mapping
 import numpy as np
 import pandas as pd
 
-__all__ = ["Depot", "Planted", "make_depot", "make_stamped", "SCANNERS", "LABEL_STOCKS", "DEPOTS"]
+__all__ = ["Depot", "Planted", "make_depot", "make_stamped", "simulated_reviews", "SCANNERS", "LABEL_STOCKS",
+           "DEPOTS"]
 
 SCANNERS = ("S1", "S2", "S3", "S4", "S5", "S6")
 LABEL_STOCKS = ("matte", "glossy", "thermal")
@@ -350,3 +351,29 @@ def make_stamped(n_rows: int = 1797, *, stamp_share: float = 0.12, n_components:
     planted = {"customs stamp": Planted("customs stamp", np.flatnonzero(stamped).astype(np.intp), (),
                                         "a customs stamp inked over the lower-left corner (no column records it)")}
     return Depot(frame=frame, images=images, embeddings=embeddings, planted=planted)
+
+
+def simulated_reviews(queue, planted: Mapping[str, Planted]) -> pd.DataFrame:
+    """The demos' SIMULATED reviewer: a filled review sheet from the planted ground truth.
+
+    Each queued error is tagged with the planted modes whose rows hold it (ground truth
+    that real data never gives); the others stay untagged. Columns ``row, reviewed,
+    tags, note``, as `slicefind.tally.read_reviews` reads them.
+
+    Examples
+    --------
+    >>> import slicefind as sf
+    >>> depot = make_depot(1500, random_state=0)
+    >>> found = sf.find_slices(depot.frame, label="label", prediction="pred")
+    >>> sheet = simulated_reviews(sf.build_queue(found, budget=20, rest=5), depot.planted)
+    >>> sheet.columns.tolist(), len(sheet)
+    (['row', 'reviewed', 'tags', 'note'], 20)
+    """
+    membership: dict[int, list[str]] = {}
+    for name, p in planted.items():
+        for row in p.rows.tolist():
+            membership.setdefault(int(row), []).append(name)
+    rows = queue.table["row"].astype(int).tolist()
+    return pd.DataFrame({"row": rows, "reviewed": 1,
+                         "tags": [";".join(sorted(membership.get(r, []))) for r in rows],
+                         "note": "simulated reviewer"})

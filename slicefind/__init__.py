@@ -10,7 +10,8 @@ from slicefind.decision import decision_paragraphs
 from slicefind.describe import SliceDescription, describe_slice
 from slicefind.queue import Queue, build_queue
 from slicefind.slices import FoundSlices, find_slices
-from slicefind.table import SlicefindError, SlicefindTypeError, SlicefindValueError, WorkspaceBusyError
+from slicefind.exceptions import (SlicefindError, SlicefindTypeError, SlicefindValueError,
+                                  WorkspaceBusyError)
 from slicefind.tally import Tally, read_reviews, tally
 from slicefind.text import embed_texts, text_features
 from slicefind.workspace import Workspace, data_fingerprint

@@ -192,7 +192,7 @@ def _read_table(path, argument: str = "DATA") -> pd.DataFrame:
     CSV files may separate cells with ``,`` ``;`` tab or ``|`` (sniffed from the header
     line); text columns holding only ISO 8601 dates or timestamps are read as datetimes.
     """
-    from slicefind.table import SlicefindTypeError, SlicefindValueError
+    from slicefind.exceptions import SlicefindTypeError, SlicefindValueError
 
     if not isinstance(path, (str, os.PathLike)):
         raise SlicefindTypeError(f"{argument} must be a file path; got {type(path).__name__}.")
@@ -214,7 +214,7 @@ def _read_table(path, argument: str = "DATA") -> pd.DataFrame:
 
 def _read_embeddings(path: str, id_column: str | None, frame: pd.DataFrame) -> np.ndarray:
     """Embeddings from .npy, or from a Parquet/CSV file of numeric vector columns."""
-    from slicefind.table import SlicefindValueError
+    from slicefind.exceptions import SlicefindValueError
 
     if not os.path.exists(path):
         raise SlicefindValueError(f"--embeddings file {path!r} does not exist.")
@@ -281,7 +281,7 @@ def _print_slices(table: pd.DataFrame, n: int) -> None:
 
 def _print_confusions(found, n: int = 3) -> None:
     """The commonest confusions among all errors, one line."""
-    from slicefind.describe import value_text
+    from slicefind.values import value_text
 
     conf = found.confusions(top=n)
     if conf.empty:
@@ -400,7 +400,7 @@ def _print_words(descriptions, column, top: int = 6) -> None:
 
 def _read_dask(pattern: str, scheduler: str | None):
     """A dask DataFrame from Parquet files (a folder or a glob) and a client to count on."""
-    from slicefind.table import SlicefindValueError
+    from slicefind.exceptions import SlicefindValueError
 
     try:
         import dask.dataframe as dd
@@ -424,7 +424,7 @@ def _dask_embeddings(value: str, frame):
     """--embeddings with --engine dask: a .npy file (a dask array whose pieces the workers
     read from the file themselves, so it must be on a path they see) or the name of the
     data's vector column (or several comma-separated columns, one per dimension)."""
-    from slicefind.table import SlicefindValueError
+    from slicefind.exceptions import SlicefindValueError
 
     if os.path.exists(value):
         if not value.lower().endswith(".npy"):
@@ -447,16 +447,16 @@ def _dask_embeddings(value: str, frame):
     names = [v.strip() for v in value.split(",") if v.strip()]
     missing = [v for v in names if v not in frame.columns]
     if missing or not names:
-        from slicefind.table import _suggest
+        from slicefind.exceptions import did_you_mean
 
         raise SlicefindValueError(f"--embeddings {value!r} is neither a file nor a column of DATA."
-                                  f"{_suggest(missing[0], frame.columns) if missing else ''}")
+                                  f"{did_you_mean(missing[0], frame.columns) if missing else ''}")
     return names[0] if len(names) == 1 else names
 
 
 def _text_options(args) -> dict:
     """find_slices' text= options from --embed-text, --text-model and --no-text-features."""
-    from slicefind.table import SlicefindValueError
+    from slicefind.exceptions import SlicefindValueError
 
     if not args.embed_text:
         given = [o for o, v in (("--text-model", args.text_model), ("--no-text-features", args.no_text_features)) if v]
@@ -508,7 +508,7 @@ def cmd_scan(args) -> int:
 
 def cmd_queue(args) -> int:
     import slicefind as sf
-    from slicefind.table import SlicefindValueError
+    from slicefind.exceptions import SlicefindValueError
     from slicefind.workspace import Workspace
 
     if args.adaptive and not args.extend:
@@ -558,7 +558,7 @@ def cmd_queue(args) -> int:
 
 
 def _parse_names(pairs: Sequence[str]) -> dict[str, str]:
-    from slicefind.table import SlicefindValueError
+    from slicefind.exceptions import SlicefindValueError
 
     names = {}
     for pair in pairs:
@@ -571,7 +571,7 @@ def _parse_names(pairs: Sequence[str]) -> dict[str, str]:
 
 def _parse_together(groups: Sequence[str]) -> list[list[str]]:
     """--together values ('A,B') as lists of category names."""
-    from slicefind.table import SlicefindValueError
+    from slicefind.exceptions import SlicefindValueError
 
     out = []
     for group in groups:
@@ -696,7 +696,7 @@ def run_compare(workspace_path, after_path, *, data_path=None, id_column=None,
         with examples), and for any bad input `compare` refuses.
     """
     from slicefind.compare import COMPARE_CSV, NEW_SLICES_CSV, _check_data, compare, match_after
-    from slicefind.table import SlicefindTypeError, SlicefindValueError
+    from slicefind.exceptions import SlicefindTypeError, SlicefindValueError
     from slicefind.workspace import DB_NAME, Workspace
 
     if not isinstance(workspace_path, (str, os.PathLike)):
@@ -971,7 +971,7 @@ def build_parser() -> argparse.ArgumentParser:
 
 def main(argv: Sequence[str] | None = None) -> int:
     """Entry point: returns the exit code (0 ok, 1 failure, 2 usage)."""
-    from slicefind.table import SlicefindError
+    from slicefind.exceptions import SlicefindError
 
     parser = build_parser()
     args = parser.parse_args(argv)

@@ -36,7 +36,8 @@ import numpy as np
 from slicefind.hierarchy import ROOT, Tree, condensed_tree, single_node, subtree_rows, tree_vote
 from slicefind.neighbours import PLACINGS
 from slicefind.slices import Slice
-from slicefind.table import EvalTable, SlicefindTypeError, SlicefindValueError
+from slicefind.table import EvalTable
+from slicefind.exceptions import SlicefindTypeError, SlicefindValueError
 
 __all__ = [
     "ClusterResult",

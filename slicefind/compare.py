@@ -26,8 +26,9 @@ import pandas as pd
 
 from slicefind.slices import FoundSlices, find_slices, jaccard
 from slicefind.stats import bh_qvalues, mcnemar_exact, wilson_interval
-from slicefind.table import (SlicefindTypeError, SlicefindValueError, _equal, _error_flags, _suggest,
-                             mined_roles)
+from slicefind.exceptions import SlicefindTypeError, SlicefindValueError, check_level, did_you_mean
+from slicefind.values import json_scalar
+from slicefind.table import _equal, _error_flags, mined_roles
 
 __all__ = ["Comparison", "compare", "match_after", "format_comparison", "COMPARE_COLUMNS",
            "NEW_SLICE_COLUMNS", "OVERALL", "KINDS", "NEW_JACCARD", "NEW_STATUSES",
@@ -122,8 +123,8 @@ class Comparison:
         """
         return {"format": 1, "table": _frame_to_lists(self.table),
                 "new_slices": _frame_to_lists(self.new_slices),
-                "overall": {k: _plain(v) for k, v in self.overall.items()},
-                "params": {k: _plain(v) for k, v in self.params.items()}}
+                "overall": {k: json_scalar(v, keep_infinite=True) for k, v in self.overall.items()},
+                "params": {k: json_scalar(v, keep_infinite=True) for k, v in self.params.items()}}
 
     @classmethod
     def from_dict(cls, parts: Mapping[str, Any]) -> "Comparison":
@@ -147,19 +148,8 @@ class Comparison:
 # --- plain parts for storage -----------------------------------------------------------------
 
 
-def _plain(value):
-    """A JSON-ready scalar: numpy unwrapped, NaN as None."""
-    if isinstance(value, np.generic):
-        value = value.item()
-    if isinstance(value, float) and math.isnan(value):
-        return None
-    if isinstance(value, (list, tuple)):
-        return [_plain(v) for v in value]
-    return value
-
-
 def _frame_to_lists(frame: pd.DataFrame) -> dict[str, list]:
-    return {str(c): [_plain(v) for v in frame[c].tolist()] for c in frame.columns}
+    return {str(c): [json_scalar(v, keep_infinite=True) for v in frame[c].tolist()] for c in frame.columns}
 
 
 def _lists_to_frame(parts: Mapping[str, list], columns) -> pd.DataFrame:
@@ -190,12 +180,6 @@ def _typed(frame: pd.DataFrame) -> pd.DataFrame:
 
 
 # --- validating the inputs -------------------------------------------------------------------
-
-
-def _check_level(name: str, value) -> float:
-    if isinstance(value, bool) or not isinstance(value, (int, float, np.floating)) or not 0 < value < 1:
-        raise SlicefindValueError(f"{name} must be a number strictly between 0 and 1; got {value!r}.")
-    return float(value)
 
 
 def _source(found_or_workspace, categories):
@@ -266,7 +250,7 @@ def _values(value, argument: str, data, table) -> tuple[np.ndarray, str]:
                    "it), or pass the predictions as an array.")
             raise SlicefindValueError(msg)
         if value not in data.columns:
-            msg = f"{argument}={value!r} is not a column of data.{_suggest(value, data.columns)}"
+            msg = f"{argument}={value!r} is not a column of data.{did_you_mean(value, data.columns)}"
             raise SlicefindValueError(msg)
         return data[value].to_numpy()[table.positions], f"column {value!r}"
     if isinstance(value, pd.DataFrame) or not isinstance(
@@ -410,7 +394,7 @@ def _scan_options(found: FoundSlices, scan_options: Mapping[str, Any]) -> dict[s
             raise SlicefindValueError(msg)
         if key not in allowed:
             msg = (f"compare() got an unexpected keyword {key!r}; extra keywords go to find_slices "
-                   f"for the after scan.{_suggest(key, sorted(allowed))}")
+                   f"for the after scan.{did_you_mean(key, sorted(allowed))}")
             raise SlicefindTypeError(msg)
     options = {k: found.params[k] for k in _REUSED_SCAN_OPTIONS if k in found.params}
     if found.params.get("text_method") in ("lsa", "sentence-transformers"):   # embedded again, the same way
@@ -585,8 +569,8 @@ def compare(found_or_workspace, before=None, after=None, *, data=None, categorie
           R1     scanner = S3  -0.344      True       False
     """
     found, result, names = _source(found_or_workspace, categories)
-    fdr = _check_level("fdr", fdr)
-    confidence_level = _check_level("confidence_level", confidence_level)
+    fdr = check_level("fdr", fdr)
+    confidence_level = check_level("confidence_level", confidence_level)
     if not isinstance(rescan, (bool, np.bool_)):
         raise SlicefindTypeError(f"rescan must be True or False; got {rescan!r}.")
     table = found.eval_table
@@ -680,7 +664,7 @@ def match_after(found: FoundSlices, after: pd.DataFrame, *, id_column, predictio
     column = id_column or table.id_column
     if column is not None and column not in after.columns:
         msg = (f"the --after file has no id column {column!r} to match rows by; its columns are "
-               f"{list(after.columns)[:10]}.{_suggest(column, after.columns)}")
+               f"{list(after.columns)[:10]}.{did_you_mean(column, after.columns)}")
         raise SlicefindValueError(msg)
     others = [c for c in after.columns if c != column]
     if prediction_column is None:
@@ -691,7 +675,7 @@ def match_after(found: FoundSlices, after: pd.DataFrame, *, id_column, predictio
         prediction_column = others[0]
     elif prediction_column not in after.columns:
         msg = (f"prediction_column={prediction_column!r} is not a column of the --after file; its "
-               f"columns are {list(after.columns)[:10]}.{_suggest(prediction_column, after.columns)}")
+               f"columns are {list(after.columns)[:10]}.{did_you_mean(prediction_column, after.columns)}")
         raise SlicefindValueError(msg)
     if prediction_column == column:
         raise SlicefindValueError(f"prediction_column={prediction_column!r} is the id column.")

@@ -10,7 +10,7 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-from slicefind.table import SlicefindTypeError, SlicefindValueError
+from slicefind.exceptions import SlicefindTypeError, SlicefindValueError
 from slicefind.tally import UNTAGGED, WRONG_LABEL, Tally
 
 __all__ = ["decision_paragraphs"]
@@ -57,9 +57,10 @@ def decision_paragraphs(result, *, top: int = 3) -> list[str]:
 
     Examples
     --------
-    >>> from slicefind.queue import _demo_found, build_queue
+    >>> from slicefind.demodata import example_scan
+    >>> from slicefind.queue import build_queue
     >>> from slicefind.tally import tally
-    >>> queue = build_queue(_demo_found(), budget=30, rest=10)
+    >>> queue = build_queue(example_scan(), budget=30, rest=10)
     >>> sheet = queue.table[["row", "stratum"]].copy()
     >>> sheet["reviewed"] = "yes"
     >>> sheet["tags"] = sheet["stratum"].map({"R1": "smudged print", "R2": "ink smear", "rest": ""})

@@ -24,8 +24,8 @@ from typing import Mapping
 import numpy as np
 import pandas as pd
 
-__all__ = ["Depot", "Planted", "make_depot", "make_stamped", "simulated_reviews", "SCANNERS", "LABEL_STOCKS",
-           "DEPOTS"]
+__all__ = ["Depot", "Planted", "make_depot", "make_stamped", "simulated_reviews", "example_scan",
+           "SCANNERS", "LABEL_STOCKS", "DEPOTS"]
 
 SCANNERS = ("S1", "S2", "S3", "S4", "S5", "S6")
 LABEL_STOCKS = ("matte", "glossy", "thermal")
@@ -377,3 +377,22 @@ def simulated_reviews(queue, planted: Mapping[str, Planted]) -> pd.DataFrame:
     return pd.DataFrame({"row": rows, "reviewed": 1,
                          "tags": [";".join(sorted(membership.get(r, []))) for r in rows],
                          "note": "simulated reviewer"})
+
+
+def example_scan():
+    """A small seeded scan for the docstring examples: parcel labels read at a depot.
+
+    2,000 rows; scanner S3 on the night shift and recycled label stock err more often.
+    """
+    from slicefind.slices import find_slices
+
+    rng = np.random.default_rng(7)
+    n = 2000
+    frame = pd.DataFrame({"parcel": [f"P{i:04d}" for i in range(n)],
+                          "scanner": rng.choice(["S1", "S2", "S3"], n),
+                          "shift": rng.choice(["day", "night"], n),
+                          "label_stock": rng.choice(["matte", "gloss", "recycled"], n)})
+    rate = np.where((frame["scanner"] == "S3") & (frame["shift"] == "night"), 0.45, 0.08)
+    rate = np.where(frame["label_stock"] == "recycled", rate + 0.2, rate)
+    wrong = rng.random(n) < rate
+    return find_slices(frame, errors=wrong, id_column="parcel")

@@ -13,8 +13,10 @@ import numpy as np
 import pandas as pd
 
 from slicefind import bitset
-from slicefind.table import EvalTable, SlicefindTypeError, SlicefindValueError, _suggest
+from slicefind.table import EvalTable
+from slicefind.exceptions import SlicefindTypeError, SlicefindValueError, did_you_mean
 from slicefind.text import TOKEN_PATTERN, class_tfidf
+from slicefind.values import value_text
 
 __all__ = [
     "SliceDescription",
@@ -52,14 +54,6 @@ def _percent(share: float) -> str:
     """'71%' (rounded down below 100%, so 99.6% never reads as 100%)."""
     value = math.floor(share * 100) if share < 1 else 100
     return f"{value}%"
-
-
-def value_text(value) -> str:
-    """Readable text of a label value: an integer-valued float as an integer (``6.0`` ->
-    ``6``, as a label column stored as floats holds its classes), else ``str``."""
-    if isinstance(value, (float, np.floating)) and float(value).is_integer():
-        return str(int(value))
-    return str(value)
 
 
 def enriched_items(table: EvalTable, rows: np.ndarray, *, items, top: int = 5,
@@ -427,7 +421,7 @@ def describe_slice(found, slice_id: str, *, text_column: str | None = None, n_ex
     if text_column is None and found.params.get("text") in table.data.columns:
         text_column = found.params["text"]
     if text_column is not None and text_column not in table.data.columns:
-        msg = f"text_column={text_column!r} is not a column of data.{_suggest(text_column, table.data.columns)}"
+        msg = f"text_column={text_column!r} is not a column of data.{did_you_mean(text_column, table.data.columns)}"
         raise SlicefindValueError(msg)
     if isinstance(n_exemplars, bool) or not isinstance(n_exemplars, (int, np.integer)) or n_exemplars < 0:
         raise SlicefindValueError(f"n_exemplars must be an integer >= 0; got {n_exemplars!r}.")

@@ -57,9 +57,10 @@ from slicefind.items import (CONDITIONAL_ITEMS, Item, ItemSet, _Builder, categor
 from slicefind.rules import search_levels
 from slicefind.stats import fisher_greater
 from slicefind.table import (CATEGORICAL, DATETIME, ERROR_KINDS, MAX_INT_LEVELS, NUMERIC,
-                             EvalTable, SlicefindTypeError, SlicefindValueError, _check_hashable, _equal,
-                             _suggest, column_kind, embedding_columns, mined_roles,
-                             nonfinite_message, nonfinite_rows, positive_class, vectors_of)
+                             EvalTable, _check_hashable, _equal, column_kind, embedding_columns,
+                             mined_roles, nonfinite_message, nonfinite_rows, positive_class,
+                             vectors_of)
+from slicefind.exceptions import SlicefindTypeError, SlicefindValueError, did_you_mean
 
 __all__ = ["is_dask_frame", "DaskMined", "DaskRows", "mine_dask", "SAMPLE_ROWS"]
 
@@ -886,11 +887,11 @@ def mine_dask(data, *, label=None, prediction=None, errors=None, loss=None, thre
             raise SlicefindTypeError(f"with a Dask DataFrame, {name}= must be a column name; got "
                                      f"{type(value).__name__}.")
         if value not in columns:
-            raise SlicefindValueError(f"{name}={value!r} is not a column of data.{_suggest(value, columns)}")
+            raise SlicefindValueError(f"{name}={value!r} is not a column of data.{did_you_mean(value, columns)}")
     for column in exclude:
         if column not in columns:
             raise SlicefindValueError(f"exclude names {column!r}, which is not a column of data."
-                                      f"{_suggest(column, columns)}")
+                                      f"{did_you_mean(column, columns)}")
     if label is not None:
         if prediction is None:
             raise SlicefindValueError("prediction= is required when label= is given.")

@@ -18,6 +18,7 @@ import pandas as pd
 
 from slicefind import bitset
 from slicefind.table import CATEGORICAL, DATETIME, NUMERIC, EvalTable
+from slicefind.values import value_text
 
 __all__ = ["Item", "ItemSet", "build_items", "readable_cut", "WEEKDAYS"]
 
@@ -59,13 +60,6 @@ class ItemSet:
 
     def __repr__(self):
         return f"ItemSet(n_items={len(self.items)}, n_columns={len(self.columns)})"
-
-
-def _format_value(value) -> str:
-    """Readable text of one categorical value."""
-    if isinstance(value, (float, np.floating)) and float(value).is_integer():
-        return str(int(value))
-    return str(value)
 
 
 def readable_cut(low: float, high: float) -> float:
@@ -201,10 +195,10 @@ def categorical_items(column: str, uniques, counts: np.ndarray, min_rows: int):
     for k in range(len(uniques)):
         if counts[k] >= min_rows:
             value = uniques[k]
-            out.append((Item(column, "=", value, f"{column} = {_format_value(value)}"), (k,)))
+            out.append((Item(column, "=", value, f"{column} = {value_text(value)}"), (k,)))
     if len(rare) >= 2:
         values = tuple(uniques[k] for k in rare)
-        shown = ", ".join(_format_value(v) for v in values[:3])
+        shown = ", ".join(value_text(v) for v in values[:3])
         more = f", … {len(values)} values" if len(values) > 3 else ""
         out.append((Item(column, "rare", values, f"{column} in {{{shown}{more}}}"), tuple(rare)))
     out.append((Item(column, "missing", None, f"{column} is missing"), (-1,)))

@@ -25,9 +25,11 @@ from typing import Any, Mapping, Sequence
 import numpy as np
 import pandas as pd
 
-from slicefind.describe import label_column, value_text
+from slicefind.describe import label_column
+from slicefind.values import value_text
 from slicefind.slices import Slice, default_min_rows
-from slicefind.table import EvalTable, SlicefindTypeError, SlicefindValueError, _suggest
+from slicefind.table import EvalTable
+from slicefind.exceptions import SlicefindTypeError, SlicefindValueError, did_you_mean
 
 __all__ = ["LABEL_SOURCE", "UNION_KEY", "LabelCheck", "label_check_slices", "score_columns",
            "poisson_binomial_sf", "nested_tests", "params_summary", "SCORE_KINDS"]
@@ -133,7 +135,7 @@ def score_columns(scores, columns) -> tuple[str, ...]:
         return ()
     for name in names:
         if name not in columns:
-            msg = f"scores names {name!r}, which is not a column of data.{_suggest(name, columns)}"
+            msg = f"scores names {name!r}, which is not a column of data.{did_you_mean(name, columns)}"
             raise SlicefindValueError(msg)
     repeated = sorted({c for c in names if names.count(c) > 1})
     if repeated:

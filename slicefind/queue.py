@@ -22,7 +22,8 @@ import pandas as pd
 
 from slicefind.labelcheck import LABEL_SOURCE
 from slicefind.slices import FoundSlices
-from slicefind.table import SlicefindTypeError, SlicefindValueError, _suggest, neutralize_formulas
+from slicefind.exceptions import SlicefindTypeError, SlicefindValueError, did_you_mean
+from slicefind.table import neutralize_formulas
 
 __all__ = ["Queue", "build_queue", "REST", "MIN_PER_STRATUM", "QUEUE_COLUMNS", "SHEET_COLUMNS",
            "ADAPTIVE_RULE"]
@@ -178,7 +179,8 @@ class Queue:
         Examples
         --------
         >>> from slicefind.tally import tally
-        >>> queue = build_queue(_demo_found(), budget=30, rest=10)
+        >>> from slicefind.demodata import example_scan
+        >>> queue = build_queue(example_scan(), budget=30, rest=10)
         >>> longer = queue.extend(20)
         >>> len(longer), longer.table.head(len(queue)).equals(queue.table)
         (50, True)
@@ -248,7 +250,8 @@ class Queue:
         Examples
         --------
         >>> import tempfile, pathlib
-        >>> queue = build_queue(_demo_found(), budget=12, rest=2)
+        >>> from slicefind.demodata import example_scan
+        >>> queue = build_queue(example_scan(), budget=12, rest=2)
         >>> path = pathlib.Path(tempfile.mkdtemp()) / "queue.csv"
         >>> queue.to_csv(path)
         >>> print(path.read_text(encoding="utf-8-sig").splitlines()[0])
@@ -485,7 +488,7 @@ def _check_show(show, data: pd.DataFrame) -> tuple[str, ...]:
         if not isinstance(column, str):
             raise SlicefindTypeError(f"show must name columns by string; got {column!r} ({type(column).__name__}).")
         if column not in data.columns:
-            msg = f"show names {column!r}, which is not a column of data.{_suggest(column, data.columns)}"
+            msg = f"show names {column!r}, which is not a column of data.{did_you_mean(column, data.columns)}"
             raise SlicefindValueError(msg)
         if column in reserved:
             msg = (f"show names {column!r}, which the review sheet already uses for its own column; "
@@ -593,7 +596,8 @@ def build_queue(
 
     Examples
     --------
-    >>> queue = build_queue(_demo_found(), budget=30, rest=10)
+    >>> from slicefind.demodata import example_scan
+    >>> queue = build_queue(example_scan(), budget=30, rest=10)
     >>> print(queue.strata[["stratum", "n_errors", "n_queued"]].to_string(index=False))
     stratum  n_errors  n_queued
          R1       186        10
@@ -732,18 +736,3 @@ def _fill_reviews(sheet: pd.DataFrame, reviews: pd.DataFrame) -> None:
         sheet.iat[i, sheet.columns.get_loc("reviewed")] = "1" if bool(done) else ""
         sheet.iat[i, sheet.columns.get_loc("tags")] = "" if pd.isna(tags) else str(tags)
         sheet.iat[i, sheet.columns.get_loc("note")] = "" if pd.isna(note) else str(note)
-
-
-def _demo_found() -> FoundSlices:
-    """A small seeded scan for the examples: parcel labels read at a depot."""
-    from slicefind.slices import find_slices
-    rng = np.random.default_rng(7)
-    n = 2000
-    frame = pd.DataFrame({"parcel": [f"P{i:04d}" for i in range(n)],
-                          "scanner": rng.choice(["S1", "S2", "S3"], n),
-                          "shift": rng.choice(["day", "night"], n),
-                          "label_stock": rng.choice(["matte", "gloss", "recycled"], n)})
-    rate = np.where((frame["scanner"] == "S3") & (frame["shift"] == "night"), 0.45, 0.08)
-    rate = np.where(frame["label_stock"] == "recycled", rate + 0.2, rate)
-    wrong = rng.random(n) < rate
-    return find_slices(frame, errors=wrong, id_column="parcel")

@@ -18,7 +18,8 @@ from typing import Any, Mapping, Sequence
 import numpy as np
 import pandas as pd
 
-from slicefind.describe import label_column, prediction_column, value_text
+from slicefind.describe import label_column, prediction_column
+from slicefind.values import value_text
 from slicefind.text import mark_terms
 
 __all__ = ["ReportInputs", "render_report", "write_report", "CAUTIONS", "TEXT_CAUTION", "MAX_SLICES_SHOWN",

@@ -66,8 +66,9 @@ import pandas as pd
 
 from slicefind.describe import label_column, prediction_column
 from slicefind.queue import QUEUE_COLUMNS, REST
-from slicefind.table import (SlicefindError, SlicefindTypeError, SlicefindValueError,
-                             WorkspaceBusyError)
+from slicefind.exceptions import (SlicefindError, SlicefindTypeError, SlicefindValueError,
+                                  WorkspaceBusyError)
+from slicefind.values import json_scalar
 from slicefind.tally import UNTAGGED, WRONG_LABEL, normalize_tag
 from slicefind.text import mark_terms
 
@@ -129,28 +130,10 @@ class _HTTPError(Exception):
 # --- small pure helpers ---------------------------------------------------------------------
 
 
-def _clean(value):
-    """A JSON-ready scalar: numpy unwrapped, NaN/NaT/None as None, other objects as text."""
-    if value is None:
-        return None
-    if isinstance(value, np.generic):
-        value = value.item()
-    if isinstance(value, float):
-        return value if np.isfinite(value) else None
-    if isinstance(value, (str, bool, int)):
-        return value
-    try:
-        if pd.isna(value):
-            return None
-    except (TypeError, ValueError):
-        pass
-    return str(value)
-
-
 def _records(frame: pd.DataFrame) -> list[dict]:
     """Rows of a frame as JSON-ready dicts."""
     columns = [str(c) for c in frame.columns]
-    return [{c: _clean(v) for c, v in zip(columns, values)}
+    return [{c: json_scalar(v) for c, v in zip(columns, values)}
             for values in frame.itertuples(index=False, name=None)]
 
 
@@ -389,13 +372,13 @@ class _ReviewApp:
             if not isinstance(picked, pd.DataFrame) or "row" not in picked.columns:
                 rows = self._by_position.loc[self.found.rows(sid)].to_numpy()
                 picked = exemplars(table, rows, n_exemplars=_N_EXEMPLARS, random_state=0)
-            stats = {f"slice_{k}": _clean(record.get(k)) for k in
+            stats = {f"slice_{k}": json_scalar(record.get(k)) for k in
                      ("n_rows", "error_rate", "ci_low", "ci_high")}
             found_terms = getattr(description, "terms", None)
             terms = ([str(t) for t in found_terms["term"].head(_N_TERMS)]
                      if isinstance(found_terms, pd.DataFrame) and "term" in found_terms.columns else [])
             out[sid] = {"summary": summary, **stats, "terms": terms,
-                        "exemplars": [self._example(int(r), terms) | {"kind": _clean(k), "error": _clean(e)}
+                        "exemplars": [self._example(int(r), terms) | {"kind": json_scalar(k), "error": json_scalar(e)}
                                       for r, k, e in zip(picked["row"],
                                                          picked.get("kind", ["random"] * len(picked)),
                                                          picked.get("error", [None] * len(picked)))]}
@@ -414,13 +397,13 @@ class _ReviewApp:
             return info | {"has_image": False}
         at = int(at)
         if table.id_column:
-            info["id"] = _clean(table.data[table.id_column].iat[at])
+            info["id"] = json_scalar(table.data[table.id_column].iat[at])
         if table.label is not None:
-            info["label"] = _clean(table.label[at])
+            info["label"] = json_scalar(table.label[at])
         if table.prediction is not None:
-            info["prediction"] = _clean(table.prediction[at])
+            info["prediction"] = json_scalar(table.prediction[at])
         if self.text_column:
-            info["text"] = _clean(table.data[self.text_column].iat[at])
+            info["text"] = json_scalar(table.data[self.text_column].iat[at])
             if terms and isinstance(info["text"], str):
                 info["text_parts"] = [[m, p] for m, p in mark_terms(info["text"], terms, limit=MAX_TEXT_SHOWN)]
         info["has_image"] = self._has_image(row)
@@ -465,7 +448,7 @@ class _ReviewApp:
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always")
             result = self.ws.tally(scan_id=self.scan_id)
-        summary = {k: _clean(v) for k, v in result.summary.items()}
+        summary = {k: json_scalar(v) for k, v in result.summary.items()}
         notes = [str(w.message) for w in caught]
         latest = self._latest_scan()
         if latest != self.scan_id:
@@ -804,7 +787,7 @@ class _Handler(http.server.BaseHTTPRequestHandler):
             self.wfile.write(body)
 
     def _json(self, status: int, payload, headers: Mapping[str, str] = ()):
-        body = json.dumps(payload, allow_nan=False, default=_clean).encode("utf-8")
+        body = json.dumps(payload, allow_nan=False, default=json_scalar).encode("utf-8")
         self._send(status, body, "application/json; charset=utf-8", headers)
 
     def _fail(self, exc: _HTTPError):

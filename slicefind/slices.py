@@ -18,7 +18,8 @@ from slicefind.items import ItemSet, build_items
 from slicefind.rules import (ENGINES, RuleCounts, fold_into_refinements, refinement_pvalues,
                              rule_bits, search_rules)
 from slicefind.stats import SCORE_COLUMNS, bh_qvalues, fisher_greater, score_slices
-from slicefind.table import EvalTable, SlicefindTypeError, SlicefindValueError, build_eval_table
+from slicefind.table import EvalTable, build_eval_table
+from slicefind.exceptions import SlicefindTypeError, SlicefindValueError
 from slicefind.text import TermCounts, check_texts, embed_column
 from slicefind.text import text_features as surface_features
 

@@ -676,7 +676,7 @@ def mcnemar_exact(b, c, *, alternative: str = "two-sided"):
     >>> print(mcnemar_exact([0, 4], [0, 4]))
     [1. 1.]
     """
-    from slicefind.table import SlicefindTypeError, SlicefindValueError
+    from slicefind.exceptions import SlicefindTypeError, SlicefindValueError
 
     if alternative not in MCNEMAR_ALTERNATIVES:
         msg = f"alternative must be one of {MCNEMAR_ALTERNATIVES}; got {alternative!r}."

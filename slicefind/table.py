@@ -5,18 +5,15 @@ module trusts an `EvalTable` and never re-validates.
 """
 from __future__ import annotations
 
-import difflib
 from dataclasses import dataclass, field
 from typing import Any, Mapping, Sequence
 
 import numpy as np
 import pandas as pd
 
+from slicefind.exceptions import SlicefindTypeError, SlicefindValueError, did_you_mean
+
 __all__ = [
-    "SlicefindError",
-    "SlicefindValueError",
-    "SlicefindTypeError",
-    "WorkspaceBusyError",
     "neutralize_formulas",
     "restore_formula_text",
     "EvalTable",
@@ -36,22 +33,6 @@ ERROR_KINDS = ("all", "false_positive", "false_negative")
 MAX_INT_LEVELS = 20
 #: string columns with more distinct values than this are skipped (ids, paths, free text)
 MAX_STRING_LEVELS = 200
-
-
-class SlicefindError(Exception):
-    """Base class of every error slicefind raises on purpose."""
-
-
-class SlicefindValueError(SlicefindError, ValueError):
-    """A bad value: the message names the argument or column and the value."""
-
-
-class SlicefindTypeError(SlicefindError, TypeError):
-    """A bad type: the message names the argument or column and the type."""
-
-
-class WorkspaceBusyError(SlicefindError):
-    """Another process held the workspace's database past the retries; nothing was written."""
 
 
 @dataclass(frozen=True, repr=False)
@@ -129,19 +110,13 @@ def restore_formula_text(text: str) -> str:
     return text
 
 
-def _suggest(name, options) -> str:
-    """' Did you mean ...?' for the closest option, or ''."""
-    close = difflib.get_close_matches(str(name), [str(o) for o in options], n=1, cutoff=0.5)
-    return f" Did you mean {close[0]!r}?" if close else ""
-
-
 def _column_or_array(data: pd.DataFrame, value, argument: str):
     """Resolve a column name or an array-like to (values, column name or None)."""
     if value is None:
         return None, None
     if isinstance(value, str):
         if value not in data.columns:
-            msg = f"{argument}={value!r} is not a column of data.{_suggest(value, data.columns)}"
+            msg = f"{argument}={value!r} is not a column of data.{did_you_mean(value, data.columns)}"
             raise SlicefindValueError(msg)
         return data[value].to_numpy(), value
     if isinstance(value, pd.Series):
@@ -299,10 +274,10 @@ def build_eval_table(
         exclude = (exclude,)
     for column in exclude:
         if column not in data.columns:
-            msg = f"exclude names {column!r}, which is not a column of data.{_suggest(column, data.columns)}"
+            msg = f"exclude names {column!r}, which is not a column of data.{did_you_mean(column, data.columns)}"
             raise SlicefindValueError(msg)
     if id_column is not None and id_column not in data.columns:
-        msg = f"id_column={id_column!r} is not a column of data.{_suggest(id_column, data.columns)}"
+        msg = f"id_column={id_column!r} is not a column of data.{did_you_mean(id_column, data.columns)}"
         raise SlicefindValueError(msg)
     if error_kind not in ERROR_KINDS:
         msg = f"error_kind must be one of {ERROR_KINDS}; got {error_kind!r}."
@@ -472,7 +447,7 @@ def embedding_columns(embeddings, columns) -> tuple[str, ...]:
         return ()
     for name in names:
         if name not in columns:
-            msg = f"embeddings names {name!r}, which is not a column of data.{_suggest(name, columns)}"
+            msg = f"embeddings names {name!r}, which is not a column of data.{did_you_mean(name, columns)}"
             raise SlicefindValueError(msg)
     return names
 

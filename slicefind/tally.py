@@ -30,7 +30,8 @@ from slicefind.labelcheck import LABEL_SOURCE
 from slicefind.queue import REST, Queue
 from slicefind.stats import (cochran_sample_size, stratified_interval, stratified_proportion,
                              wilson_interval_fpc)
-from slicefind.table import SlicefindTypeError, SlicefindValueError, _suggest, restore_formula_text
+from slicefind.exceptions import SlicefindTypeError, SlicefindValueError, check_level, did_you_mean
+from slicefind.table import restore_formula_text
 
 __all__ = ["Tally", "Combined", "tally", "read_reviews", "normalize_tag", "UNTAGGED",
            "WRONG_LABEL", "TRUE_WORDS", "FALSE_WORDS", "MAX_LISTED", "CATEGORY_COLUMNS",
@@ -244,8 +245,9 @@ class Tally:
 
         Examples
         --------
-        >>> from slicefind.queue import _demo_found, build_queue
-        >>> queue = build_queue(_demo_found(), budget=30, rest=10)
+        >>> from slicefind.demodata import example_scan
+    >>> from slicefind.queue import build_queue
+        >>> queue = build_queue(example_scan(), budget=30, rest=10)
         >>> sheet = queue.table[["row", "stratum"]].copy()
         >>> sheet["reviewed"] = "yes"
         >>> sheet["tags"] = sheet["stratum"].map({"R1": "smudged print", "R2": "ink smear;smudged print",
@@ -321,7 +323,7 @@ class Tally:
         chosen = [normalize_tag(c) for c in given]
         unknown = [g for g, c in zip(given, chosen) if c not in known]
         if unknown:
-            hint = _suggest(normalize_tag(unknown[0]), known)
+            hint = did_you_mean(normalize_tag(unknown[0]), known)
             msg = (f"{name} has {unknown!r}, which {'is' if len(unknown) == 1 else 'are'} not a "
                    f"category of this tally; its categories are {known}.{hint}")
             raise SlicefindValueError(msg)
@@ -484,8 +486,9 @@ def read_reviews(reviewed, queue: Queue, *, trust_order: bool = False) -> pd.Dat
 
     Examples
     --------
-    >>> from slicefind.queue import _demo_found, build_queue
-    >>> queue = build_queue(_demo_found(), budget=10, rest=2)
+    >>> from slicefind.demodata import example_scan
+    >>> from slicefind.queue import build_queue
+    >>> queue = build_queue(example_scan(), budget=10, rest=2)
     >>> first = int(queue.table["row"][0])
     >>> sheet = pd.DataFrame({"row": [first], "reviewed": ["Yes "], "tags": ["Torn Label; faded ink"]})
     >>> print(read_reviews(sheet, queue)[["row", "reviewed", "tags"]].to_string(index=False))
@@ -659,13 +662,6 @@ def _sorted_tags_problem(trace: list[tuple[str, int, str, str]]) -> list[tuple[s
 # --- estimates ---------------------------------------------------------------------------
 
 
-def _check_level(name: str, value) -> float:
-    """A number strictly between 0 and 1, or a clear error."""
-    if isinstance(value, bool) or not isinstance(value, (int, float, np.floating)) or not 0 < value < 1:
-        raise SlicefindValueError(f"{name} must be a number strictly between 0 and 1; got {value!r}.")
-    return float(value)
-
-
 def _check_names(names, queue: Queue) -> dict[str, str]:
     """slice_id -> normalised category, each id a candidate stratum of the queue."""
     if names is None:
@@ -757,8 +753,9 @@ def tally(queue: Queue, reviewed, *, names: Mapping[str, str] | None = None,
 
     Examples
     --------
-    >>> from slicefind.queue import _demo_found, build_queue
-    >>> queue = build_queue(_demo_found(), budget=30, rest=10)
+    >>> from slicefind.demodata import example_scan
+    >>> from slicefind.queue import build_queue
+    >>> queue = build_queue(example_scan(), budget=30, rest=10)
     >>> sheet = queue.table[["row", "stratum"]].copy()
     >>> sheet["reviewed"] = "yes"
     >>> sheet["tags"] = sheet["stratum"].map({"R1": "smudged print", "R2": "ink smear", "rest": ""})
@@ -775,8 +772,8 @@ def tally(queue: Queue, reviewed, *, names: Mapping[str, str] | None = None,
     """
     if not isinstance(queue, Queue):
         raise SlicefindTypeError(f"queue must be a Queue (from build_queue); got {type(queue).__name__}.")
-    threshold = _check_level("threshold", threshold)
-    confidence_level = _check_level("confidence_level", confidence_level)
+    threshold = check_level("threshold", threshold)
+    confidence_level = check_level("confidence_level", confidence_level)
     named = _check_names(names, queue)
     reviews = read_reviews(reviewed, queue, trust_order=trust_order)
 

@@ -28,7 +28,7 @@ from typing import Sequence
 import numpy as np
 import pandas as pd
 
-from slicefind.table import SlicefindTypeError, SlicefindValueError, _suggest
+from slicefind.exceptions import SlicefindTypeError, SlicefindValueError, did_you_mean
 
 __all__ = ["embed_texts", "embed_column", "text_features", "check_texts", "mark_terms", "TermCounts",
            "class_tfidf", "TextEmbedding", "TEXT_FEATURES", "TOKEN_PATTERN", "DEFAULT_COMPONENTS",
@@ -87,7 +87,7 @@ def check_texts(data, column, *, argument: str = "text") -> np.ndarray:
         raise SlicefindTypeError(f"{argument}= must be a column name (a string); got {type(column).__name__}.")
     if not hasattr(data, "columns") or column not in data.columns:
         columns = list(getattr(data, "columns", []))
-        raise SlicefindValueError(f"{argument}={column!r} is not a column of data.{_suggest(column, columns)}")
+        raise SlicefindValueError(f"{argument}={column!r} is not a column of data.{did_you_mean(column, columns)}")
     values = data[column].to_numpy(dtype=object)
     return _as_texts(values, f"{argument}={column!r}")
 

@@ -29,8 +29,10 @@ import pandas as pd
 
 from slicefind.queue import REST, Queue, _assemble
 from slicefind.slices import FoundSlices
-from slicefind.table import (EvalTable, SlicefindTypeError, SlicefindValueError, WorkspaceBusyError,
-                             _suggest)
+from slicefind.table import EvalTable
+from slicefind.exceptions import (SlicefindTypeError, SlicefindValueError, WorkspaceBusyError,
+                                  did_you_mean)
+from slicefind.values import json_scalar
 from slicefind.tally import UNTAGGED, Tally, normalize_tag, read_reviews, tally
 
 __all__ = ["Workspace", "data_fingerprint", "DB_NAME", "SCHEMA_VERSION", "MIGRATIONS"]
@@ -181,24 +183,6 @@ _fingerprint = data_fingerprint
 # --- storing arrays and frames without pickle ---------------------------------------------
 
 
-def _jsonable(value):
-    """A JSON-ready Python scalar: numpy scalars unwrapped, NaN/None as None, others as text."""
-    if value is None:
-        return None
-    if isinstance(value, (np.generic,)):
-        value = value.item()
-    if isinstance(value, float) and not np.isfinite(value):
-        return None if np.isnan(value) else value
-    if isinstance(value, (str, bool, int, float)):
-        return value
-    try:
-        if pd.isna(value):
-            return None
-    except (TypeError, ValueError):
-        pass
-    return str(value)
-
-
 def _json_default(value):
     """JSON for numpy scalars and arrays; text for anything else."""
     if isinstance(value, np.generic):
@@ -217,7 +201,7 @@ def _pack(arrays: Mapping[str, np.ndarray], meta: Mapping[str, Any]) -> bytes:
             stored[name] = values
             kinds[name] = "npy"
         else:
-            text = json.dumps([_jsonable(v) for v in values.tolist()])
+            text = json.dumps([json_scalar(v, keep_infinite=True) for v in values.tolist()])
             stored[name] = np.frombuffer(text.encode("utf-8"), dtype=np.uint8)
             kinds[name] = "json"
     header = json.dumps({"meta": meta, "kinds": kinds}).encode("utf-8")
@@ -386,9 +370,10 @@ class Workspace:
     Examples
     --------
     >>> import tempfile
-    >>> from slicefind.queue import _demo_found, build_queue
+    >>> from slicefind.demodata import example_scan
+    >>> from slicefind.queue import build_queue
     >>> ws = Workspace(tempfile.mkdtemp())
-    >>> scan_id = ws.save_scan(_demo_found())
+    >>> scan_id = ws.save_scan(example_scan())
     >>> queue = build_queue(ws.load_found(), budget=20, rest=5)
     >>> queue_id = ws.save_queue(queue)
     >>> first = int(queue.table["row"][0])
@@ -586,7 +571,7 @@ class Workspace:
         show = (show,) if isinstance(show, str) else tuple(show)
         for column in show:
             if column not in table.data.columns:
-                msg = f"show names {column!r}, which is not a column of data.{_suggest(column, table.data.columns)}"
+                msg = f"show names {column!r}, which is not a column of data.{did_you_mean(column, table.data.columns)}"
                 raise SlicefindValueError(msg)
         fingerprint = data_fingerprint if data_fingerprint is not None else _fingerprint(table.data)
         if not isinstance(fingerprint, str):
@@ -1030,7 +1015,7 @@ class Workspace:
             ids = [r[0] for r in self._conn.execute(
                 "SELECT slice_id FROM slice_rows WHERE scan_id = ?", (scan_id,))]
         if slice_id not in ids:
-            msg = f"slice_id={slice_id!r} is not a slice of scan {scan_id}.{_suggest(slice_id, ids)}"
+            msg = f"slice_id={slice_id!r} is not a slice of scan {scan_id}.{did_you_mean(slice_id, ids)}"
             raise SlicefindValueError(msg)
         if not isinstance(name, str):
             raise SlicefindTypeError(f"name must be a string; got {type(name).__name__}.")

@@ -5,7 +5,7 @@ from hypothesis import given
 from hypothesis import strategies as st
 
 from slicefind.stats import mcnemar_exact
-from slicefind.table import SlicefindTypeError, SlicefindValueError
+from slicefind.exceptions import SlicefindTypeError, SlicefindValueError
 
 # --- McNemar's exact test: external checks ---------------------------------------------------
 
@@ -111,8 +111,8 @@ import pandas as pd  # noqa: E402
 
 from review_helpers import make_found  # noqa: E402
 from slicefind.cli import run_compare  # noqa: E402
-from slicefind.compare import (COMPARE_COLUMNS, NEW_SLICE_COLUMNS, Comparison, compare,  # noqa: E402
-                               format_comparison)
+from slicefind.compare import (COMPARE_COLUMNS, NEW_SLICE_COLUMNS, Comparison, compare,
+                               format_comparison)  # noqa: E402
 from slicefind.queue import build_queue  # noqa: E402
 from slicefind.report import ReportInputs, render_report  # noqa: E402
 from slicefind.slices import find_slices  # noqa: E402

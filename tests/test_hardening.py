@@ -16,7 +16,8 @@ import pytest
 
 import slicefind.workspace as wsmod
 from slicefind.cli import _read_table, main
-from slicefind.table import WorkspaceBusyError, neutralize_formulas, restore_formula_text
+from slicefind.exceptions import WorkspaceBusyError
+from slicefind.table import neutralize_formulas, restore_formula_text
 from slicefind.tally import read_reviews
 from slicefind.workspace import DB_NAME, Workspace
 

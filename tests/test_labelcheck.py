@@ -12,7 +12,8 @@ from slicefind.cli import main
 from slicefind.labelcheck import (LABEL_SOURCE, UNION_KEY, label_check_slices, nested_tests,
                                   poisson_binomial_sf)
 from slicefind.slices import ID_PREFIXES, SOURCES
-from slicefind.table import SlicefindTypeError, SlicefindValueError, build_eval_table
+from slicefind.exceptions import SlicefindTypeError, SlicefindValueError
+from slicefind.table import build_eval_table
 from slicefind.workspace import Workspace
 
 K = 10

@@ -10,7 +10,8 @@ from scipy import stats as sps
 from review_helpers import depot_found, make_found, overlapping_slices, strata_found
 from slicefind.queue import MIN_PER_STRATUM, REST, _allocate, build_queue
 from slicefind.slices import FoundSlices
-from slicefind.table import SlicefindTypeError, SlicefindValueError, build_eval_table
+from slicefind.exceptions import SlicefindTypeError, SlicefindValueError
+from slicefind.table import build_eval_table
 from slicefind.tally import read_reviews
 
 

@@ -16,7 +16,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from slicefind import review
-from slicefind.table import SlicefindValueError, WorkspaceBusyError
+from slicefind.exceptions import SlicefindValueError, WorkspaceBusyError
 from slicefind.workspace import Workspace
 # the depot workspace and request helpers of the review tests (fixtures are used by name)
 from browser import CHROMIUM_ARGS, chromium_or_skip

@@ -11,8 +11,8 @@ from scipy.stats import norm
 from statsmodels.stats.proportion import proportion_confint, samplesize_confint_proportion
 
 from slicefind.stats import (cochran_sample_size, mover_sum_interval, score_sum_interval,
-                             stratified_interval,
-                             stratified_proportion, wilson_interval, wilson_interval_fpc, z_value)
+                             stratified_interval, stratified_proportion, wilson_interval,
+                             wilson_interval_fpc, z_value)
 
 
 # --- Cochran's sample size (REFERENCES §5) ----------------------------------------------------

@@ -4,8 +4,8 @@ import pandas as pd
 import pytest
 
 import slicefind as sf
-from slicefind.table import (CATEGORICAL, DATETIME, NUMERIC, SlicefindTypeError,
-                             SlicefindValueError, build_eval_table)
+from slicefind.table import CATEGORICAL, DATETIME, NUMERIC, build_eval_table
+from slicefind.exceptions import SlicefindTypeError, SlicefindValueError
 
 
 def _frame(n=60, seed=0):

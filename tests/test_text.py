@@ -15,7 +15,7 @@ import pytest
 import slicefind as sf
 from slicefind.demotext import make_helpdesk
 from slicefind.report import TEXT_CAUTION, marked_html
-from slicefind.table import SlicefindTypeError, SlicefindValueError
+from slicefind.exceptions import SlicefindTypeError, SlicefindValueError
 from slicefind.text import (TOKEN_PATTERN, TermCounts, check_texts, embed_texts, lsa_settings,
                             mark_terms, text_features)
 

@@ -8,7 +8,7 @@ from slicefind.cli import main
 from slicefind.decision import decision_paragraphs
 from slicefind.queue import REST, build_queue
 from slicefind.stats import stratified_interval
-from slicefind.table import SlicefindTypeError, SlicefindValueError
+from slicefind.exceptions import SlicefindTypeError, SlicefindValueError
 from slicefind.tally import PAIR_COLUMNS, UNTAGGED, WRONG_LABEL, normalize_tag, tally
 
 

@@ -14,7 +14,7 @@ import pytest
 import slicefind.workspace as wsmod
 from review_helpers import strata_found
 from slicefind.queue import build_queue
-from slicefind.table import SlicefindTypeError, SlicefindValueError
+from slicefind.exceptions import SlicefindTypeError, SlicefindValueError
 from slicefind.tally import tally
 from slicefind.workspace import DB_NAME, SCHEMA_VERSION, Workspace, data_fingerprint
 

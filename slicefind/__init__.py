@@ -5,21 +5,21 @@ scikit-learn, dask) are imported only by the functions that need them.
 """
 from importlib.metadata import PackageNotFoundError, version
 
-from slicefind.compare import Comparison, compare
-from slicefind.decision import decision_paragraphs
-from slicefind.describe import SliceDescription, describe_slice
-from slicefind.queue import Queue, build_queue
-from slicefind.slices import FoundSlices, find_slices
-from slicefind.exceptions import (SlicefindError, SlicefindTypeError, SlicefindValueError,
-                                  WorkspaceBusyError)
-from slicefind.tally import Tally, read_reviews, tally
-from slicefind.text import embed_texts, text_features
-from slicefind.workspace import Workspace, data_fingerprint
-
 try:
     __version__ = version("slicefind")
 except PackageNotFoundError:  # running from a source tree that was not installed
     __version__ = "0+unknown"
+
+from slicefind.compare import Comparison, compare
+from slicefind.decision import decision_paragraphs
+from slicefind.describe import SliceDescription, describe_slice
+from slicefind.exceptions import (SlicefindError, SlicefindTypeError, SlicefindValueError,
+                                  WorkspaceBusyError)
+from slicefind.queue import Queue, build_queue
+from slicefind.slices import FoundSlices, find_slices
+from slicefind.tally import Tally, read_reviews, tally
+from slicefind.text import embed_texts, text_features
+from slicefind.workspace import Workspace, data_fingerprint
 
 __all__ = [
     "find_slices",

@@ -84,7 +84,7 @@ def hypergeom_tails(x0, step, N, K, n, limit, first, out):
 @numba.njit(parallel=True, cache=True, nogil=True)
 def row_hashes(words, mult, out):
     """out[i] = sum_j mix(words[i, j]) * mult[j] (mod 2**64), mix(w) = w ^ (w >> 29), then
-    ^ (w << 17): the hash of `clusters._row_hashes`, one pass over the rows."""
+    ^ (w << 17): the hash of `clusters.row_hashes`, one pass over the rows."""
     n, d = words.shape
     for i in numba.prange(n):
         h = np.uint64(0)

@@ -93,15 +93,15 @@ def _count_numpy(bits, prefixes, offsets, extensions):
     return counts
 
 
-def _numba_kernels():
+def numba_kernels():
     """The compiled kernels module (compiled on first use, then loaded from numba's disk cache)."""
-    os.environ.setdefault("NUMBA_CACHE_DIR", _cache_dir())
+    os.environ.setdefault("NUMBA_CACHE_DIR", cache_dir())
     from slicefind import _kernels
 
     return _kernels
 
 
-def _cache_dir() -> str:
+def cache_dir() -> str:
     """Where numba caches compiled kernels: a per-user folder, so a read-only install still caches."""
     base = os.environ.get("XDG_CACHE_HOME") or os.path.join(os.path.expanduser("~"), ".cache")
     return os.path.join(base, "slicefind", "numba")
@@ -145,5 +145,5 @@ def count_extensions(bits: np.ndarray, prefixes: np.ndarray, offsets: np.ndarray
     if engine != "numba":
         raise ValueError(f"engine must be 'auto', 'numba' or 'numpy'; got {engine!r}.")
     counts = np.zeros(extensions.size, dtype=np.int64)
-    _numba_kernels().count_extensions(bits, prefixes, offsets, extensions, counts)
+    numba_kernels().count_extensions(bits, prefixes, offsets, extensions, counts)
     return counts

@@ -695,7 +695,7 @@ def run_compare(workspace_path, after_path, *, data_path=None, id_column=None,
         When ids are missing from the file, duplicated in it, or not rows of the scan (each
         with examples), and for any bad input `compare` refuses.
     """
-    from slicefind.compare import COMPARE_CSV, NEW_SLICES_CSV, _check_data, compare, match_after
+    from slicefind.compare import COMPARE_CSV, NEW_SLICES_CSV, check_data, compare, match_after
     from slicefind.exceptions import SlicefindTypeError, SlicefindValueError
     from slicefind.workspace import DB_NAME, Workspace
 
@@ -713,7 +713,7 @@ def run_compare(workspace_path, after_path, *, data_path=None, id_column=None,
     with Workspace(folder) as ws:
         found = ws.load_found()
         if data is not None:
-            _check_data(data, found.eval_table)
+            check_data(data, found.eval_table)
         values, info = match_after(found, after, id_column=id_column,
                                     prediction_column=prediction_column, data=data)
         result = compare(ws, after=values, data=data)

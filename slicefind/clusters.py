@@ -33,11 +33,15 @@ from typing import Any, Mapping
 
 import numpy as np
 
-from slicefind.hierarchy import ROOT, Tree, condensed_tree, single_node, subtree_rows, tree_vote
-from slicefind.neighbours import PLACINGS
-from slicefind.slices import Slice
-from slicefind.table import EvalTable
+from slicefind.bitset import cache_dir
+from slicefind.describe import describe_rows
 from slicefind.exceptions import SlicefindTypeError, SlicefindValueError
+from slicefind.hierarchy import ROOT, Tree, condensed_tree, single_node, subtree_rows, tree_vote
+from slicefind.items import build_items
+from slicefind.neighbours import NeighbourIndex, PLACINGS
+from slicefind.placing import HASH_BLOCK, Placed, row_hashes
+from slicefind.records import Slice, default_min_rows
+from slicefind.table import EvalTable
 
 __all__ = [
     "ClusterResult",
@@ -59,7 +63,6 @@ PCA_DIMS = 50
 #: dimensions of the UMAP layout that HDBSCAN clusters
 CLUSTER_DIMS = 8
 #: rows per block when a step runs over all rows (PCA transform, assignment)
-_BLOCK = 20_000
 #: warn when graph pieces smaller than a region hold at least this share of the fitted rows
 FRAGMENT_WARN_SHARE = 0.01
 #: the timed steps of `cluster_slices`, in order (keys of ``diagnostics["timings"]``)
@@ -162,49 +165,23 @@ def noise_as_singletons(labels) -> np.ndarray:
 
 # ---------------------------------------------------------------- reduction steps
 
-def _row_hashes(x: np.ndarray) -> np.ndarray:
-    """A 64-bit hash of each row's bytes: every word xor-folded (so float32 values held as
-    float64, whose low 29 bits are zero, still spread), times an odd constant per column,
-    summed modulo 2**64. Equal rows hash equal; unequal ones rarely do. A numba kernel
-    (`slicefind._kernels.row_hashes`) from 100,000 values on, numpy below."""
-    n, d = x.shape
-    mult = np.random.default_rng(12345).integers(1, 2**62, d, dtype=np.uint64) | np.uint64(1)
-    unsigned = np.dtype(f"u{x.dtype.itemsize}")
-    hashes = np.empty(n, dtype=np.uint64)
-    if n * d >= 100_000 and x.dtype.itemsize in (4, 8):
-        from slicefind.bitset import _numba_kernels
-
-        kernels = _numba_kernels()
-        for lo in range(0, n, 16 * _BLOCK):
-            words = np.ascontiguousarray(x[lo:lo + 16 * _BLOCK]).view(unsigned)
-            kernels.row_hashes(words, mult, hashes[lo:lo + 16 * _BLOCK])
-        return hashes
-    with np.errstate(over="ignore"):
-        for lo in range(0, n, _BLOCK):
-            words = np.ascontiguousarray(x[lo:lo + _BLOCK]).view(unsigned).astype(np.uint64)
-            words ^= words >> np.uint64(29)
-            words ^= words << np.uint64(17)
-            hashes[lo:lo + _BLOCK] = (words * mult).sum(axis=1, dtype=np.uint64)
-    return hashes
-
-
 def _distinct(x: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """(first row of each distinct vector, in row order; inverse) of the rows of `x`.
 
-    Rows are grouped by `_row_hashes`; a row is compared with its group's first row only
+    Rows are grouped by `row_hashes`; a row is compared with its group's first row only
     when the hash is shared, and hash groups holding unequal rows (collisions) are split
     exactly with numpy's unique on those rows alone, so memory stays small."""
     import pandas as pd
 
     n = x.shape[0]
-    codes, _ = pd.factorize(_row_hashes(x), sort=False)
+    codes, _ = pd.factorize(row_hashes(x), sort=False)
     first = np.full(int(codes.max()) + 1, n, dtype=np.int64)
     np.minimum.at(first, codes, np.arange(n))
     shared = np.flatnonzero(first[codes] != np.arange(n))
     same = np.ones(shared.size, dtype=bool)
-    for lo in range(0, shared.size, _BLOCK):
-        rows = shared[lo:lo + _BLOCK]
-        same[lo:lo + _BLOCK] = np.all(x[rows] == x[first[codes[rows]]], axis=1)
+    for lo in range(0, shared.size, HASH_BLOCK):
+        rows = shared[lo:lo + HASH_BLOCK]
+        same[lo:lo + HASH_BLOCK] = np.all(x[rows] == x[first[codes[rows]]], axis=1)
     if not same.all():                                   # hash collisions: split those groups
         members = np.flatnonzero(np.isin(codes, np.unique(codes[shared[~same]])))
         _, exact = np.unique(x[members], axis=0, return_inverse=True)
@@ -245,11 +222,11 @@ def _project(x: np.ndarray, mean: np.ndarray, axes: np.ndarray, metric: str) -> 
     the block it was projected in, and the engines must agree bit for bit.) Each row's coordinates depend on that row alone, so a row projects to
     the same value in memory and on any Dask partition."""
     out = np.empty((x.shape[0], axes.shape[1]), dtype=np.float32)
-    for lo in range(0, x.shape[0], _BLOCK):
-        block = x[lo:lo + _BLOCK]
+    for lo in range(0, x.shape[0], HASH_BLOCK):
+        block = x[lo:lo + HASH_BLOCK]
         if metric == "cosine":
             block = _normalise(block)
-        out[lo:lo + _BLOCK] = (block - mean) @ axes
+        out[lo:lo + HASH_BLOCK] = (block - mean) @ axes
     return out
 
 
@@ -258,8 +235,6 @@ def _knn(z: np.ndarray, n_neighbors: int) -> tuple[np.ndarray, np.ndarray]:
     first (distance 0), as UMAP expects: (indices, distances), each (n, n_neighbors).
     faiss's exact search (``IndexFlatL2``), three times faster than scikit-learn's brute
     force at 20,000 rows here; a row is dropped from its own list wherever it appears."""
-    from slicefind.neighbours import NeighbourIndex
-
     n = z.shape[0]
     k = min(n_neighbors, n)
     dist, idx = NeighbourIndex(z, min(k + 1, n), placing="exact").kneighbors(z)
@@ -325,7 +300,7 @@ def _umap_layout(z: np.ndarray, graph, n_dims: int, seed: int | None, *, init: s
     principal coordinates (the first columns of `z`), ``"spectral"`` from UMAP's spectral
     embedding. An int seed runs the single-threaded, reproducible optimiser; None the
     parallel one."""
-    os.environ.setdefault("NUMBA_CACHE_DIR", _cache_dir())
+    os.environ.setdefault("NUMBA_CACHE_DIR", cache_dir())
     with warnings.catch_warnings():          # umap-learn's note on its optional TensorFlow part
         warnings.filterwarnings("ignore", message=".*[Tt]ensor[Ff]low.*")
         import umap.layouts
@@ -349,13 +324,6 @@ def _umap_layout(z: np.ndarray, graph, n_dims: int, seed: int | None, *, init: s
             densmap_kwds={}, output_dens=False, parallel=seed is None, verbose=False,
             tqdm_kwds={"disable": not progress, "desc": f"UMAP {what}", "leave": False})
     return np.asarray(embedding, dtype=np.float32)
-
-
-def _cache_dir() -> str:
-    """numba's cache folder for slicefind (shared with the bitset kernels)."""
-    from slicefind.bitset import _cache_dir as bitset_cache
-
-    return bitset_cache()
 
 
 def _cache_umap_kernels(layouts) -> None:
@@ -448,8 +416,8 @@ def _extend_modes(coords: np.ndarray, err: np.ndarray, modes: np.ndarray, tree: 
         return out
     k = min(n_vote, err_idx.size)
     nn = NearestNeighbors(n_neighbors=k).fit(coords[err_idx])
-    for lo in range(0, others.size, _BLOCK):
-        block = others[lo:lo + _BLOCK]
+    for lo in range(0, others.size, HASH_BLOCK):
+        block = others[lo:lo + HASH_BLOCK]
         d, j = nn.kneighbors(coords[block])
         out[block] = tree_vote(tree, modes[j], np.ones(j.shape), distances=d, cut=cut)
     return out
@@ -465,9 +433,9 @@ def _assign(z: np.ndarray, fit: np.ndarray, rest: np.ndarray, label_sets: list[t
     nn = _neighbours(z[fit], n_neighbors)
     labels_out = [np.empty(rest.size, dtype=np.int64) for _ in label_sets]
     coords_out = [np.empty((rest.size, c.shape[1]), dtype=np.float32) for c in coord_sets]
-    blocks = range(0, rest.size, _BLOCK)
+    blocks = range(0, rest.size, HASH_BLOCK)
     for lo in tqdm(blocks, desc="assigning rows to clusters", disable=not progress, leave=False):
-        labels, coords = _vote(nn, z[rest[lo:lo + _BLOCK]], label_sets, coord_sets)
+        labels, coords = _vote(nn, z[rest[lo:lo + HASH_BLOCK]], label_sets, coord_sets)
         for got, out in zip(labels + coords, labels_out + coords_out):
             out[lo:lo + got.shape[0]] = got
     return labels_out, coords_out
@@ -475,8 +443,6 @@ def _assign(z: np.ndarray, fit: np.ndarray, rest: np.ndarray, label_sets: list[t
 
 def _neighbours(points: np.ndarray, n_neighbors: int, placing: str = "approximate"):
     """A nearest-neighbour index over `points` (`slicefind.neighbours.NeighbourIndex`)."""
-    from slicefind.neighbours import NeighbourIndex
-
     return NeighbourIndex(points, n_neighbors, placing=placing)
 
 
@@ -492,42 +458,6 @@ def _vote(nn, query: np.ndarray, label_sets: list[tuple[np.ndarray, Tree]], coor
     coords_out = [((coords[j] * w[:, :, None]).sum(axis=1) / w.sum(axis=1, keepdims=True)).astype(np.float32)
                   for coords in coord_sets]
     return labels_out, coords_out
-
-
-@dataclass(frozen=True, repr=False)
-class Placed:
-    """Where some rows landed: a label per row for each key ("region", "error_mode"), the
-    layout coordinates and the map coordinates (None without a map)."""
-
-    labels: Mapping[str, np.ndarray]
-    coords: np.ndarray
-    map_xy: np.ndarray | None
-
-    @classmethod
-    def empty(cls, like: "Placed", n: int) -> "Placed":
-        """Room for `n` rows, with the keys and widths of `like`."""
-        return cls({k: np.empty(n, dtype=np.int64) for k in like.labels},
-                   np.empty((n, like.coords.shape[1]), dtype=np.float32),
-                   None if like.map_xy is None else np.empty((n, 2), dtype=np.float32))
-
-    @classmethod
-    def concat(cls, parts: list["Placed"]) -> "Placed":
-        first = parts[0]
-        return cls({k: np.concatenate([p.labels[k] for p in parts]) for k in first.labels},
-                   np.concatenate([p.coords for p in parts]),
-                   None if first.map_xy is None else np.concatenate([p.map_xy for p in parts]))
-
-    def take(self, rows) -> "Placed":
-        return Placed({k: v[rows] for k, v in self.labels.items()}, self.coords[rows],
-                      None if self.map_xy is None else self.map_xy[rows])
-
-    def put(self, rows, other: "Placed") -> None:
-        """Write `other`'s rows at `rows` (an index array or a slice)."""
-        for k, v in other.labels.items():
-            self.labels[k][rows] = v
-        self.coords[rows] = other.coords
-        if self.map_xy is not None:
-            self.map_xy[rows] = other.map_xy
 
 
 @dataclass(frozen=True, repr=False)
@@ -562,8 +492,8 @@ class Fitted:
         coord_sets = [self.coords] + ([self.map_xy] if self.map_xy is not None else [])
         nn = nn if nn is not None else _neighbours(self.zf, self.n_neighbors, self.placing)
         out = Placed.empty(self.own(), x.shape[0])
-        for lo in range(0, x.shape[0], _BLOCK):
-            z = _project(x[lo:lo + _BLOCK], self.mean, self.axes, self.metric)
+        for lo in range(0, x.shape[0], HASH_BLOCK):
+            z = _project(x[lo:lo + HASH_BLOCK], self.mean, self.axes, self.metric)
             got_labels, got_coords = _vote(nn, z, [(self.labels[k], self.trees[k]) for k in keys],
                                             coord_sets)
             out.put(slice(lo, lo + z.shape[0]),
@@ -866,9 +796,6 @@ def cluster_slices(
     lap("assign")
 
     if items is None:
-        from slicefind.items import build_items
-        from slicefind.slices import default_min_rows
-
         items = build_items(table, min_rows=default_min_rows(n), min_errors=1) if table.kinds else None
     slices = _tree_slices(table, nodes, trees, items, source.inside(trees), hierarchy)
     lap("describe")
@@ -891,8 +818,6 @@ def _tree_slices(table: EvalTable, nodes: Mapping[str, np.ndarray], trees: Mappi
     `describe_rows` (with the per-node item counts `inside[key]` when the items' bitsets
     live elsewhere). ``key`` is ``"region:7"``; ``extra`` holds the node, its parent's key
     (``""`` under the root) and its flat cluster when HDBSCAN's own cut selected it."""
-    from slicefind.describe import describe_rows
-
     slices = []
     for source, key in (("region", "region"), ("error_mode", "error_mode")):
         if key not in nodes:
@@ -942,9 +867,9 @@ class MemoryRows:
         rest = np.setdiff1d(np.arange(self.first.size), fit, assume_unique=True)
         if rest.size:
             nn = _neighbours(fitted.zf, fitted.n_neighbors, fitted.placing)
-            blocks = range(0, rest.size, _BLOCK)
+            blocks = range(0, rest.size, HASH_BLOCK)
             for lo in tqdm(blocks, desc="assigning rows to clusters", disable=not progress, leave=False):
-                block = rest[lo:lo + _BLOCK]
+                block = rest[lo:lo + HASH_BLOCK]
                 distinct.put(block, fitted.place(self.x[self.first[block]], nn))
         return distinct.take(self.inverse)
 

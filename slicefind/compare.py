@@ -24,11 +24,14 @@ from typing import Any, Mapping
 import numpy as np
 import pandas as pd
 
-from slicefind.slices import FoundSlices, find_slices, jaccard
-from slicefind.stats import bh_qvalues, mcnemar_exact, wilson_interval
 from slicefind.exceptions import SlicefindTypeError, SlicefindValueError, check_level, did_you_mean
+from slicefind.records import jaccard
+from slicefind.slices import FoundSlices, find_slices
+from slicefind.stats import bh_qvalues, mcnemar_exact, wilson_interval
+from slicefind.table import error_flags, labels_equal, mined_roles
+from slicefind.tally import Tally, UNTAGGED, normalize_tag
 from slicefind.values import json_scalar
-from slicefind.table import _equal, _error_flags, mined_roles
+from slicefind.workspace import Workspace
 
 __all__ = ["Comparison", "compare", "match_after", "format_comparison", "COMPARE_COLUMNS",
            "NEW_SLICE_COLUMNS", "OVERALL", "KINDS", "NEW_JACCARD", "NEW_STATUSES",
@@ -184,9 +187,6 @@ def _typed(frame: pd.DataFrame) -> pd.DataFrame:
 
 def _source(found_or_workspace, categories):
     """(found, tally or None, slice names of the workspace) from a FoundSlices or a Workspace."""
-    from slicefind.tally import Tally
-    from slicefind.workspace import Workspace
-
     if not (isinstance(categories, (bool, np.bool_)) or isinstance(categories, Tally)):
         msg = (f"categories must be True, False or a Tally (from tally()); got "
                f"{type(categories).__name__}.")
@@ -212,7 +212,7 @@ def _source(found_or_workspace, categories):
     return found, result, names
 
 
-def _check_data(data, table) -> None:
+def check_data(data, table) -> None:
     """`data` must be the scanned frame: its row count, and its ids where the scan kept them."""
     if not isinstance(data, pd.DataFrame):
         raise SlicefindTypeError(f"data must be a pandas DataFrame; got {type(data).__name__}.")
@@ -235,9 +235,9 @@ def _check_data(data, table) -> None:
 
 def _same_ids(a: np.ndarray, b: np.ndarray) -> np.ndarray:
     """Elementwise equality of id values, comparing text forms when the types differ."""
-    same = _equal(a, b)
+    same = labels_equal(a, b)
     if not same.all():
-        same = _equal(np.asarray([str(v) for v in a], dtype=object),
+        same = labels_equal(np.asarray([str(v) for v in a], dtype=object),
                       np.asarray([str(v) for v in b], dtype=object))
     return same
 
@@ -277,7 +277,7 @@ def _wrong(value, argument: str, data, table) -> tuple[np.ndarray, np.ndarray | 
     """
     values, origin = _values(value, argument, data, table)
     if table.label is None:
-        flags = _error_flags(values, f"{argument} (error flags: the scan has no labels)")
+        flags = error_flags(values, f"{argument} (error flags: the scan has no labels)")
         return flags, None, origin
     missing = pd.isna(pd.Series(values, dtype=object)).to_numpy()
     if missing.any():
@@ -287,7 +287,7 @@ def _wrong(value, argument: str, data, table) -> tuple[np.ndarray, np.ndarray | 
                "needs one.")
         raise SlicefindValueError(msg)
     label = np.asarray(table.label)
-    wrong = ~_equal(label, values)
+    wrong = ~labels_equal(label, values)
     if wrong.all():
         known = set(pd.unique(pd.Series(label, dtype=object)).tolist())
         if not pd.Series(values, dtype=object).isin(known).any():
@@ -315,8 +315,6 @@ def _category_groups(found: FoundSlices, result, names: Mapping[str, str]):
     the tag used most in the slice's stratum) covers those slices' rows; every category
     covers the reviewed rows tagged with it.
     """
-    from slicefind.tally import UNTAGGED, normalize_tag
-
     slice_ids = list(found.table["slice_id"])
     named: dict[str, str] = {}
     if result is not None:
@@ -412,7 +410,7 @@ def _leaking_columns(frame: pd.DataFrame, raw_refs, flag_refs) -> list[str]:
         if frame[column].dtype.kind in "mM":
             continue                                   # times hold no labels or predictions
         values = frame[column].to_numpy()
-        if any(_equal(np.asarray(ref), values).all() for ref in raw_refs):
+        if any(labels_equal(np.asarray(ref), values).all() for ref in raw_refs):
             out.append(column)
             continue
         series = frame[column]
@@ -575,7 +573,7 @@ def compare(found_or_workspace, before=None, after=None, *, data=None, categorie
         raise SlicefindTypeError(f"rescan must be True or False; got {rescan!r}.")
     table = found.eval_table
     if data is not None:
-        _check_data(data, table)
+        check_data(data, table)
     if after is None:
         raise SlicefindValueError("after= is required: the predictions of the model after the fix.")
     options = _scan_options(found, scan_options)

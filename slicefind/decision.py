@@ -11,7 +11,7 @@ import numpy as np
 import pandas as pd
 
 from slicefind.exceptions import SlicefindTypeError, SlicefindValueError
-from slicefind.tally import UNTAGGED, WRONG_LABEL, Tally
+from slicefind.tally import Tally, UNTAGGED, WRONG_LABEL
 
 __all__ = ["decision_paragraphs"]
 

@@ -24,6 +24,8 @@ from typing import Mapping
 import numpy as np
 import pandas as pd
 
+from slicefind.slices import find_slices
+
 __all__ = ["Depot", "Planted", "make_depot", "make_stamped", "simulated_reviews", "example_scan",
            "SCANNERS", "LABEL_STOCKS", "DEPOTS"]
 
@@ -384,8 +386,6 @@ def example_scan():
 
     2,000 rows; scanner S3 on the night shift and recycled label stock err more often.
     """
-    from slicefind.slices import find_slices
-
     rng = np.random.default_rng(7)
     n = 2000
     frame = pd.DataFrame({"parcel": [f"P{i:04d}" for i in range(n)],

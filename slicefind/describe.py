@@ -13,8 +13,8 @@ import numpy as np
 import pandas as pd
 
 from slicefind import bitset
-from slicefind.table import EvalTable
 from slicefind.exceptions import SlicefindTypeError, SlicefindValueError, did_you_mean
+from slicefind.table import EvalTable
 from slicefind.text import TOKEN_PATTERN, class_tfidf
 from slicefind.values import value_text
 

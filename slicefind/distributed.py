@@ -49,18 +49,19 @@ import numpy as np
 import pandas as pd
 
 from slicefind import bitset
-from slicefind.clusters import Placed, _row_hashes
+from slicefind.bitset import numba_kernels
+from slicefind.exceptions import SlicefindTypeError, SlicefindValueError, did_you_mean
 from slicefind.hierarchy import subtree_sums
-from slicefind.items import (CONDITIONAL_ITEMS, Item, ItemSet, _Builder, categorical_items,
+from slicefind.items import (CONDITIONAL_ITEMS, Item, ItemBuilder, ItemSet, categorical_items,
                              code_mask, datetime_masks, numeric_cuts, numeric_masks,
                              numeric_values)
+from slicefind.placing import Placed, row_hashes
 from slicefind.rules import search_levels
 from slicefind.stats import fisher_greater
-from slicefind.table import (CATEGORICAL, DATETIME, ERROR_KINDS, MAX_INT_LEVELS, NUMERIC,
-                             EvalTable, _check_hashable, _equal, column_kind, embedding_columns,
+from slicefind.table import (CATEGORICAL, DATETIME, ERROR_KINDS, EvalTable, MAX_INT_LEVELS,
+                             NUMERIC, check_hashable, column_kind, embedding_columns, labels_equal,
                              mined_roles, nonfinite_message, nonfinite_rows, positive_class,
                              vectors_of)
-from slicefind.exceptions import SlicefindTypeError, SlicefindValueError, did_you_mean
 
 __all__ = ["is_dask_frame", "DaskMined", "DaskRows", "mine_dask", "SAMPLE_ROWS"]
 
@@ -95,7 +96,7 @@ def _errors_of(part: pd.DataFrame, how: dict, index: int) -> np.ndarray:
     """The error flags of partition `index`, as `table.build_eval_table` derives them."""
     if how["kind"] == "label":
         _check_complete(part, how, index)
-        return ~_equal(part[how["label"]].to_numpy(), part[how["prediction"]].to_numpy())
+        return ~labels_equal(part[how["label"]].to_numpy(), part[how["prediction"]].to_numpy())
     if how["kind"] == "errors":
         flags = part[how["errors"]]
         if flags.dtype == bool:
@@ -135,7 +136,7 @@ def _label_classes(part: pd.DataFrame, index: int, how: dict, columns: Sequence[
     label = part[how["label"]].to_numpy()
     out["classes"] = pd.unique(pd.Series(label, dtype=object))
     if how["true_class"] is not None:
-        out["n_true_class"] = int(_equal(label, np.full(len(label), how["true_class"], dtype=object)).sum())
+        out["n_true_class"] = int(labels_equal(label, np.full(len(label), how["true_class"], dtype=object)).sum())
     return out
 
 
@@ -144,10 +145,10 @@ def _keep_mask(part: pd.DataFrame, how: dict) -> np.ndarray:
     label = part[how["label"]].to_numpy()
     keep = np.ones(len(part), dtype=bool)
     if how["error_kind"] != "all":
-        is_pos = _equal(label, np.full(len(label), how["positive"], dtype=object))
+        is_pos = labels_equal(label, np.full(len(label), how["positive"], dtype=object))
         keep &= ~is_pos if how["error_kind"] == "false_positive" else is_pos
     if how["true_class"] is not None:
-        keep &= _equal(label, np.full(len(label), how["true_class"], dtype=object))
+        keep &= labels_equal(label, np.full(len(label), how["true_class"], dtype=object))
     return keep
 
 
@@ -264,7 +265,7 @@ def _profile(part: pd.DataFrame, index: int, how: dict, columns: Sequence[str]) 
                         missing=int(counts[0]), missing_errors=int(error_counts[0]))
             codes_of[column] = (codes, dtype.categories)
         else:
-            _check_hashable(part, column, where=f" of partition {index}")
+            check_hashable(part, column, where=f" of partition {index}")
             missing = series.isna().to_numpy()
             info.update(missing=int(missing.sum()), missing_errors=int((missing & errors).sum()))
             if pd.api.types.is_float_dtype(dtype) and series.nunique() > _FLOAT_DISTINCT_CAP:
@@ -428,7 +429,7 @@ def _count(block: dict, which: str, prefixes, offsets, extensions, engine: str) 
     prefixes, extensions = rows[prefixes], rows[extensions]
     total = np.zeros(len(extensions), dtype=np.int64)
     if engine == "numba":
-        bitset._numba_kernels()
+        bitset.numba_kernels()
         _kernel_threads()
     for bits in block["error_bits" if which == "errors" else "bits"]:
         if bits.shape[1]:
@@ -488,7 +489,7 @@ def _vector_summary(vectors: dict) -> dict:
 
 def _vector_hashes(vectors: dict) -> np.ndarray:
     x = vectors["x"]
-    return _row_hashes(x) if len(x) else np.zeros(0, dtype=np.uint64)
+    return row_hashes(x) if len(x) else np.zeros(0, dtype=np.uint64)
 
 
 def _take_vectors(vectors: dict, rows: np.ndarray) -> np.ndarray:
@@ -839,10 +840,8 @@ def _warm_driver() -> None:
     came after all the workers' time. Called while the workers load their own kernel for
     the first count, it overlaps with it.
     """
-    from slicefind.bitset import _numba_kernels
-
     x = np.ones(1)
-    _numba_kernels().hypergeom_tails(x, x, x, x, x, x, x, np.empty(1))
+    numba_kernels().hypergeom_tails(x, x, x, x, x, x, x, np.empty(1))
 
 
 class _Clock:
@@ -969,7 +968,7 @@ def mine_dask(data, *, label=None, prediction=None, errors=None, loss=None, thre
     del raw_parts
     min_rows = min_rows_for(n)
     min_errors = min_errors_for(n, k_total, min_rows)
-    builder = _Builder(np.zeros(0, dtype=bool), min_rows, min_errors)
+    builder = ItemBuilder(np.zeros(0, dtype=bool), min_rows, min_errors)
 
     # column kinds and candidate items, as build_eval_table and build_items decide them
     kinds, skipped, merged = {}, {}, {}
@@ -1146,7 +1145,7 @@ def _datetime_position(item: Item) -> int:
     return 31
 
 
-def _add_counted(client, builder: _Builder, items: list, cols: list, packed: list, n: int,
+def _add_counted(client, builder: ItemBuilder, items: list, cols: list, packed: list, n: int,
                  offset: int) -> None:
     """Offer every candidate to the builder with counts summed over partitions.
 

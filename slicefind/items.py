@@ -17,7 +17,8 @@ import numpy as np
 import pandas as pd
 
 from slicefind import bitset
-from slicefind.table import CATEGORICAL, DATETIME, NUMERIC, EvalTable
+from slicefind.stats import fisher_greater
+from slicefind.table import CATEGORICAL, DATETIME, EvalTable, NUMERIC
 from slicefind.values import value_text
 
 __all__ = ["Item", "ItemSet", "build_items", "readable_cut", "WEEKDAYS"]
@@ -96,7 +97,7 @@ def _fmt(x: float) -> str:
     return f"{x:.12g}"
 
 
-class _Builder:
+class ItemBuilder:
     """Collects items and packs their masks (all-row and error-row bitsets)."""
 
     def __init__(self, errors: np.ndarray, min_rows: int, min_errors: int):
@@ -171,8 +172,6 @@ CONDITIONAL_ITEMS = 5
 
 def _worst_items(builder, errors: np.ndarray, top: int) -> list[np.ndarray]:
     """Masks of the `top` items with the most excess errors that are clearly worse than the rest."""
-    from slicefind.stats import fisher_greater
-
     if not builder.items:
         return []
     n_rows, n_errors = np.asarray(builder.n_rows), np.asarray(builder.n_errors)
@@ -261,8 +260,6 @@ def _tree_cuts(xs: np.ndarray, errs: np.ndarray, min_leaf: int, depth: int) -> l
     node), keeping only splits whose two sides differ in error rate (two-sided Fisher
     p < 0.001 within the node) and rounding each to the coarsest decimal that keeps 98% of
     the split's Gini gain."""
-    from slicefind.stats import fisher_greater
-
     n = xs.size
     cum = np.concatenate([[0], np.cumsum(errs, dtype=np.int64)])
     distinct = np.concatenate([[False], xs[1:] > xs[:-1]])      # a split may fall before i
@@ -380,7 +377,7 @@ def build_items(table: EvalTable, *, min_rows: int, min_errors: int = 1, n_bins:
     Items that cover every row, and items whose rows equal an earlier item of the same
     column, are dropped. Assumes a validated `EvalTable`.
     """
-    builder = _Builder(table.errors, min_rows, min_errors)
+    builder = ItemBuilder(table.errors, min_rows, min_errors)
     columns = tuple(table.kinds)
     numeric = [c for c in columns if table.kinds[c] == NUMERIC]
     for index, column in enumerate(columns):      # categories and dates first ...

@@ -26,16 +26,14 @@ import numpy as np
 import pandas as pd
 
 from slicefind.describe import label_column
-from slicefind.values import value_text
-from slicefind.slices import Slice, default_min_rows
-from slicefind.table import EvalTable
 from slicefind.exceptions import SlicefindTypeError, SlicefindValueError, did_you_mean
+from slicefind.records import LABEL_SOURCE, Slice, default_min_rows
+from slicefind.table import EvalTable
+from slicefind.values import value_text
 
-__all__ = ["LABEL_SOURCE", "UNION_KEY", "LabelCheck", "label_check_slices", "score_columns",
+__all__ = ["UNION_KEY", "LabelCheck", "label_check_slices", "score_columns",
            "poisson_binomial_sf", "nested_tests", "params_summary", "SCORE_KINDS"]
 
-#: the `Slice.source` of this module's candidates (ids ``L1``, ``L2``, ...)
-LABEL_SOURCE = "label_check"
 #: the key of the candidate holding every suspected row; the pairs' ``extra["parent"]``
 UNION_KEY = "label_check:all"
 #: what the scores hold: one probability per class, or that of the predicted class

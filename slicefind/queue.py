@@ -20,9 +20,9 @@ from typing import Any, Mapping, Sequence
 import numpy as np
 import pandas as pd
 
-from slicefind.labelcheck import LABEL_SOURCE
-from slicefind.slices import FoundSlices
 from slicefind.exceptions import SlicefindTypeError, SlicefindValueError, did_you_mean
+from slicefind.records import LABEL_SOURCE
+from slicefind.slices import FoundSlices
 from slicefind.table import neutralize_formulas
 
 __all__ = ["Queue", "build_queue", "REST", "MIN_PER_STRATUM", "QUEUE_COLUMNS", "SHEET_COLUMNS",
@@ -221,7 +221,7 @@ class Queue:
                     "spread": {s: round(float(v), 4) for s, v in reading["spread"].items()}}
         params = dict(self.params)
         params["extensions"] = list(params.get("extensions", [])) + [step]
-        return _assemble(self.strata.drop(columns="n_queued"), self._order, self._rowdata,
+        return assemble_queue(self.strata.drop(columns="n_queued"), self._order, self._rowdata,
                          self._batches + ({s: c for s, c in add.items() if c},), params,
                          self.n_rows, self.n_errors)
 
@@ -499,7 +499,7 @@ def _check_show(show, data: pd.DataFrame) -> tuple[str, ...]:
     return show
 
 
-def _assemble(strata: pd.DataFrame, order: Mapping[str, np.ndarray], rowdata: pd.DataFrame,
+def assemble_queue(strata: pd.DataFrame, order: Mapping[str, np.ndarray], rowdata: pd.DataFrame,
               batches: tuple, params: Mapping[str, Any], n_rows: int, n_errors: int) -> Queue:
     """Lay out the batches (each evenly interleaved across its strata) into a Queue.
 
@@ -689,7 +689,7 @@ def build_queue(
               "random_state": random_state if isinstance(random_state, (int, np.integer)) else None,
               "min_per_stratum": MIN_PER_STRATUM, "id_column": table.id_column,
               "extensions": []}
-    return _assemble(strata, order, rowdata, (batch,), params, table.n_rows, table.n_errors)
+    return assemble_queue(strata, order, rowdata, (batch,), params, table.n_rows, table.n_errors)
 
 
 def _refuse_filled_sheet(path: str) -> None:

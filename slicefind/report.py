@@ -18,9 +18,11 @@ from typing import Any, Mapping, Sequence
 import numpy as np
 import pandas as pd
 
+from slicefind.decision import decision_paragraphs
 from slicefind.describe import label_column, prediction_column
-from slicefind.values import value_text
+from slicefind.tally import WRONG_LABEL
 from slicefind.text import mark_terms
+from slicefind.values import value_text
 
 __all__ = ["ReportInputs", "render_report", "write_report", "CAUTIONS", "TEXT_CAUTION", "MAX_SLICES_SHOWN",
            "PALETTE"]
@@ -426,9 +428,6 @@ def render_report(found, inputs: ReportInputs | None = None) -> str:
 
 def _decision_section(result) -> str:
     """Wrong labels, pairs of categories fixed together, and the plain-words paragraphs."""
-    from slicefind.decision import decision_paragraphs
-    from slicefind.tally import WRONG_LABEL
-
     parts = []
     summary = result.summary
     if summary.get("n_wrong_label"):

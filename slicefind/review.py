@@ -64,13 +64,14 @@ from typing import Any, Iterable, Mapping, Sequence
 import numpy as np
 import pandas as pd
 
-from slicefind.describe import label_column, prediction_column
-from slicefind.queue import QUEUE_COLUMNS, REST
+from slicefind.describe import exemplars, label_column, prediction_column
 from slicefind.exceptions import (SlicefindError, SlicefindTypeError, SlicefindValueError,
                                   WorkspaceBusyError)
-from slicefind.values import json_scalar
+from slicefind.queue import QUEUE_COLUMNS, REST
 from slicefind.tally import UNTAGGED, WRONG_LABEL, normalize_tag
 from slicefind.text import mark_terms
+from slicefind.values import json_scalar
+from slicefind.workspace import Workspace
 
 __all__ = ["ReviewServer", "make_server", "serve", "MAX_JSON_BYTES", "MAX_JSON_DEPTH",
            "MAX_SHEET_BYTES", "MAX_TAG_LENGTH", "IMAGE_TYPES", "CATEGORIES_ARTIFACT", "SOURCE"]
@@ -268,8 +269,6 @@ class _ReviewApp:
 
     def __init__(self, workspace, *, images=None, image_column=None, text_column=None,
                  image_folders: Sequence[str] = (), data_folder=None):
-        from slicefind.workspace import Workspace
-
         self.ws = Workspace(workspace, create=False)
         try:
             self._load(images, image_column, text_column, image_folders, data_folder)
@@ -352,8 +351,6 @@ class _ReviewApp:
 
     def _describe(self) -> dict[str, dict]:
         """Per queued candidate: summary, slice statistics and exemplar rows."""
-        from slicefind.describe import exemplars
-
         stored = self._artifact("descriptions", {}) or {}
         table = self.found.eval_table
         by_id = self.found.table.set_index("slice_id")

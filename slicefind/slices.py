@@ -14,70 +14,29 @@ import numpy as np
 import pandas as pd
 
 from slicefind import bitset
+from slicefind.clusters import cluster_slices
+from slicefind.describe import confusions
+from slicefind.distributed import is_dask_frame, mine_dask
+from slicefind.exceptions import SlicefindTypeError, SlicefindValueError
 from slicefind.items import ItemSet, build_items
+from slicefind.labelcheck import label_check_slices, nested_tests, params_summary, score_columns
+from slicefind.records import Slice, default_min_rows, jaccard
 from slicefind.rules import (ENGINES, RuleCounts, fold_into_refinements, refinement_pvalues,
                              rule_bits, search_rules)
 from slicefind.stats import SCORE_COLUMNS, bh_qvalues, fisher_greater, score_slices
 from slicefind.table import EvalTable, build_eval_table
-from slicefind.exceptions import SlicefindTypeError, SlicefindValueError
-from slicefind.text import TermCounts, check_texts, embed_column
-from slicefind.text import text_features as surface_features
+from slicefind.text import TermCounts, check_texts, embed_column, text_features as surface_features
 
-__all__ = ["Slice", "FoundSlices", "find_slices", "TABLE_COLUMNS", "default_min_rows",
-           "jaccard"]
+__all__ = ["FoundSlices", "find_slices", "TABLE_COLUMNS"]
 
 #: the contract's columns of `FoundSlices.table`, in order (extra columns follow)
 TABLE_COLUMNS = ("slice_id", "source", "description") + SCORE_COLUMNS + ("q_value",)
-SOURCES = ("rule", "region", "error_mode", "label_check")
 #: the letter each source's slice ids start with (``R1``, ``C2``, ``L1``)
 ID_PREFIXES = {"rule": "R", "region": "C", "error_mode": "C", "label_check": "L"}
 CLUSTER_CHOICES = ("both", "regions", "error_modes", "none")
 TESTED_COLUMNS = (("description", "source", "n_terms") + SCORE_COLUMNS
                   + ("q_value", "passed", "parent_p_value", "worse_than_parents", "too_large",
                      "folded_into", "explained_by"))
-
-
-@dataclass(frozen=True, repr=False)
-class Slice:
-    """One candidate from any source, before ranking.
-
-    ``rows`` are sorted positions among the analysed rows of the `EvalTable`.
-    """
-
-    source: str
-    description: str
-    rows: np.ndarray
-    n_terms: int = 0
-    key: str = ""                    # stable identity within its source (rule items, cluster label)
-    extra: Mapping[str, Any] = field(default_factory=dict)
-
-    def __repr__(self):
-        return f"Slice({self.source}, {self.description!r}, n_rows={self.rows.size})"
-
-
-def jaccard(a: np.ndarray, b: np.ndarray) -> float:
-    """|A ∩ B| / |A ∪ B| of two sorted row arrays; 0.0 when both are empty.
-
-    Examples
-    --------
-    >>> jaccard(np.array([0, 1, 2, 3]), np.array([2, 3, 4]))
-    0.4
-    """
-    union = np.union1d(a, b).size
-    return 0.0 if union == 0 else np.intersect1d(a, b, assume_unique=True).size / union
-
-
-def default_min_rows(n_rows: int) -> int:
-    """0.5% of the rows, but never fewer than 20 (nor more than the table).
-
-    A slice holding 0.5% of the rows, and at least 20 rows, can always be found.
-
-    Examples
-    --------
-    >>> default_min_rows(1_000), default_min_rows(100_000), default_min_rows(1_000_000)
-    (20, 500, 5000)
-    """
-    return int(min(n_rows, max(20, math.floor(0.005 * n_rows))))
 
 
 @dataclass(frozen=True, repr=False)
@@ -154,8 +113,6 @@ class FoundSlices:
         1 -> 2: 100 errors (67%), 67% of label 1
         2 -> 3: 50 errors (33%), 50% of label 2
         """
-        from slicefind.describe import confusions
-
         if isinstance(top, bool) or not isinstance(top, (int, np.integer)) or top < 1:
             raise SlicefindValueError(f"top must be an integer >= 1; got {top!r}.")
         table = self.eval_table
@@ -398,8 +355,6 @@ def find_slices(
             return min_errors
         return max(3, math.floor(at_least * n_errors / n_rows) + 1)
 
-    from slicefind.distributed import is_dask_frame
-
     if scores is not None and (is_dask_frame(data) or client is not None):
         msg = ("scores= (--scores) needs an in-memory pandas DataFrame; the Dask engine (a Dask "
                "DataFrame, client=, --engine dask) does not run the label check. Drop scores= or "
@@ -407,8 +362,6 @@ def find_slices(
         raise SlicefindValueError(msg)
     score_cols: tuple[str, ...] = ()
     if scores is not None:
-        from slicefind.labelcheck import score_columns
-
         if not isinstance(data, pd.DataFrame):
             raise SlicefindTypeError(f"data must be a pandas DataFrame; got {type(data).__name__}.")
         if label is None or prediction is None:
@@ -433,8 +386,6 @@ def find_slices(
             msg = (f"with a Dask DataFrame, engine={engine!r} cannot be used (the Dask engine counts "
                    "with the bitset kernel); leave engine at its default.")
             raise SlicefindValueError(msg)
-        from slicefind.distributed import mine_dask
-
         mined = mine_dask(data, label=label, prediction=prediction, errors=errors, loss=loss,
                           threshold=threshold, id_column=id_column, client=client,
                           exclude=exclude,
@@ -458,8 +409,6 @@ def find_slices(
         if term_counts is not None and term_counts.n_rows != n:
             term_counts = term_counts.take(table.positions)      # the analysed rows only
         if scores is not None:
-            from slicefind.labelcheck import label_check_slices
-
             # checked before any mining; score columns are skipped as such
             label_check = label_check_slices(table, scores, min_rows=min_rows)
             table = replace(table, skipped={c: ("scores column" if c in score_cols else why)
@@ -491,8 +440,6 @@ def find_slices(
     extra_slices: list[Slice] = []
     has_embeddings = table.embeddings is not None or embedding_rows is not None
     if has_embeddings and clusters != "none":
-        from slicefind.clusters import cluster_slices
-
         options = dict(cluster_options or {})
         options.setdefault("items", items)
         result = cluster_slices(table, strategy=clusters, random_state=random_state,
@@ -545,8 +492,6 @@ def find_slices(
             extra_slices[:n_clusters], tested["n_rows"].to_numpy()[block], tested["n_errors"].to_numpy()[block],
             passed[block], too_large[block], n, k_total, cutoff)
     if len(extra_slices) > n_clusters:
-        from slicefind.labelcheck import nested_tests
-
         block = slice(n_rules + n_clusters, None)
         parent_p[block], worse[block], label_folds = nested_tests(label_check, passed[block],
                                                                   too_large[block], cutoff)
@@ -638,8 +583,6 @@ def find_slices(
                       text_method="given embeddings" if text_record is None else text_record.method)
         cluster_extra.update(text=text_record, term_counts=term_counts)
     if label_check is not None:
-        from slicefind.labelcheck import params_summary
-
         label_ids = {extra_slices[idx - n_rules].key: sid for idx, sid in zip(kept, ids)
                      if idx >= n_rules + n_clusters}
         params["scores"] = list(score_cols) if score_cols else "array"

@@ -9,6 +9,9 @@ from __future__ import annotations
 import numpy as np
 from scipy import special
 
+from slicefind.bitset import numba_kernels
+from slicefind.exceptions import SlicefindTypeError, SlicefindValueError
+
 __all__ = [
     "z_value",
     "wilson_interval",
@@ -142,10 +145,8 @@ def _hypergeom_sf(a, N, K, n) -> np.ndarray:
             x0.tolist(), step.tolist(), Ns.tolist(), Ks.tolist(), ns.tolist(), limit.tolist(),
             first.tolist())])
     elif inside.size >= NUMBA_MIN_TAILS:
-        from slicefind.bitset import _numba_kernels
-
         total = np.empty(inside.size)
-        _numba_kernels().hypergeom_tails(x0, step, Ns, Ks, ns, limit, first, total)
+        numba_kernels().hypergeom_tails(x0, step, Ns, Ks, ns, limit, first, total)
     else:
         total = _tails_numpy(x0, step, Ns, Ks, ns, limit, first)
     out[inside] = np.where(upper, total, 1.0 - total)
@@ -214,7 +215,6 @@ def bh_qvalues(p_values) -> np.ndarray:
     q = np.empty(m, dtype=np.float64)
     q[order] = np.minimum(q_sorted, 1.0)
     return q
-
 
 
 SCORE_COLUMNS = ("n_rows", "n_errors", "error_rate", "ci_low", "ci_high", "lift",
@@ -676,8 +676,6 @@ def mcnemar_exact(b, c, *, alternative: str = "two-sided"):
     >>> print(mcnemar_exact([0, 4], [0, 4]))
     [1. 1.]
     """
-    from slicefind.exceptions import SlicefindTypeError, SlicefindValueError
-
     if alternative not in MCNEMAR_ALTERNATIVES:
         msg = f"alternative must be one of {MCNEMAR_ALTERNATIVES}; got {alternative!r}."
         raise SlicefindValueError(msg)

@@ -147,7 +147,7 @@ def _no_missing(values: np.ndarray, argument: str) -> None:
         raise SlicefindValueError(msg)
 
 
-def _error_flags(values: np.ndarray, argument: str) -> np.ndarray:
+def error_flags(values: np.ndarray, argument: str) -> np.ndarray:
     """Booleans from a bool or 0/1 array, or a clear error naming the first bad row."""
     flags = pd.Series(values)
     if flags.dtype == bool:
@@ -161,7 +161,7 @@ def _error_flags(values: np.ndarray, argument: str) -> np.ndarray:
     return flags.to_numpy().astype(bool)
 
 
-def _equal(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+def labels_equal(a: np.ndarray, b: np.ndarray) -> np.ndarray:
     """Elementwise equality of labels and predictions, tolerant of mixed dtypes."""
     try:
         eq = np.asarray(a == b)
@@ -172,7 +172,7 @@ def _equal(a: np.ndarray, b: np.ndarray) -> np.ndarray:
     return np.array([x == y for x, y in zip(a.tolist(), b.tolist())], dtype=bool)
 
 
-def _check_hashable(data: pd.DataFrame, column, where: str = "") -> None:
+def check_hashable(data: pd.DataFrame, column, where: str = "") -> None:
     """Raise if an object column holds unhashable cells (lists, dicts, arrays); `where`
     follows the row number in the message (" of partition 3")."""
     series = data[column]
@@ -300,14 +300,14 @@ def build_eval_table(
         prediction_values, prediction_col = _column_or_array(data, prediction, "prediction")
         _no_missing(label_values, "label" + (f" column {label_col!r}" if label_col else ""))
         _no_missing(prediction_values, "prediction" + (f" column {prediction_col!r}" if prediction_col else ""))
-        wrong = ~_equal(label_values, prediction_values)
+        wrong = ~labels_equal(label_values, prediction_values)
         definition = "label != prediction"
         for role, col in (("label", label_col), ("prediction", prediction_col)):
             if col is not None:
                 used[role] = col
     elif errors is not None:
         values, col = _column_or_array(data, errors, "errors")
-        wrong = _error_flags(values, "errors" + (f" column {col!r}" if col else ""))
+        wrong = error_flags(values, "errors" + (f" column {col!r}" if col else ""))
         definition = f"{col or 'errors'} is true"
         if col is not None:
             used["errors"] = col
@@ -338,11 +338,11 @@ def build_eval_table(
             raise SlicefindValueError(msg)
     if error_kind != "all":
         positive = positive_class(error_kind, positive, pd.unique(pd.Series(label_values, dtype=object)))
-        is_pos = _equal(label_values, np.full(len(label_values), positive, dtype=object))
+        is_pos = labels_equal(label_values, np.full(len(label_values), positive, dtype=object))
         keep &= ~is_pos if error_kind == "false_positive" else is_pos
         definition = f"{error_kind.replace('_', ' ')} (positive = {positive!r})"
     if true_class is not None:
-        is_class = _equal(label_values, np.full(len(label_values), true_class, dtype=object))
+        is_class = labels_equal(label_values, np.full(len(label_values), true_class, dtype=object))
         if not is_class.any():
             msg = f"true_class={true_class!r} never occurs in label."
             raise SlicefindValueError(msg)
@@ -380,7 +380,7 @@ def build_eval_table(
                                else "embeddings column" if column in emb_columns
                                else f"{_role(used, column)} column")
             continue
-        _check_hashable(data, column)
+        check_hashable(data, column)
         kind, reason = _column_kind(view[column], len(view))
         if kind is None:
             skipped[column] = reason

@@ -26,11 +26,11 @@ from typing import Any, Mapping
 import numpy as np
 import pandas as pd
 
-from slicefind.labelcheck import LABEL_SOURCE
-from slicefind.queue import REST, Queue
+from slicefind.exceptions import SlicefindTypeError, SlicefindValueError, check_level, did_you_mean
+from slicefind.queue import Queue, REST
+from slicefind.records import LABEL_SOURCE
 from slicefind.stats import (cochran_sample_size, stratified_interval, stratified_proportion,
                              wilson_interval_fpc)
-from slicefind.exceptions import SlicefindTypeError, SlicefindValueError, check_level, did_you_mean
 from slicefind.table import restore_formula_text
 
 __all__ = ["Tally", "Combined", "tally", "read_reviews", "normalize_tag", "UNTAGGED",

@@ -27,13 +27,13 @@ from typing import Any, Callable, Iterable, Mapping, Sequence
 import numpy as np
 import pandas as pd
 
-from slicefind.queue import REST, Queue, _assemble
-from slicefind.slices import FoundSlices
-from slicefind.table import EvalTable
 from slicefind.exceptions import (SlicefindTypeError, SlicefindValueError, WorkspaceBusyError,
                                   did_you_mean)
+from slicefind.queue import Queue, REST, assemble_queue
+from slicefind.slices import FoundSlices
+from slicefind.table import EvalTable
+from slicefind.tally import Tally, UNTAGGED, normalize_tag, read_reviews, tally
 from slicefind.values import json_scalar
-from slicefind.tally import UNTAGGED, Tally, normalize_tag, read_reviews, tally
 
 __all__ = ["Workspace", "data_fingerprint", "DB_NAME", "SCHEMA_VERSION", "MIGRATIONS"]
 
@@ -798,7 +798,7 @@ class Workspace:
         rowdata = _unpack_frame(rowdata).set_index("row")
         rowdata.index = rowdata.index.astype(np.int64)
         order = {s: _blob_rows(order[s]).astype(np.int64) for s in strata["stratum"]}
-        queue = _assemble(strata, order, rowdata, tuple(json.loads(batches)), json.loads(params),
+        queue = assemble_queue(strata, order, rowdata, tuple(json.loads(batches)), json.loads(params),
                           int(n_rows), int(n_errors))
         stored = _unpack_frame(stored)
         same = all(np.array_equal(queue.table[c].to_numpy(), stored[c].to_numpy())

@@ -16,7 +16,7 @@ import slicefind as sf
 from slicefind import clusters
 from slicefind.clusters import NOISE, DisconnectedGraphWarning, cluster_slices, noise_as_singletons
 from slicefind.hierarchy import ROOT, Tree
-from slicefind.slices import jaccard
+from slicefind.records import jaccard
 from slicefind.table import build_eval_table
 
 N_BLOB = 300
@@ -204,7 +204,7 @@ def test_distinct_survives_hash_collisions(monkeypatch):
     """When every row hashes alike, the exact split still groups equal rows only."""
     rng = np.random.default_rng(0)
     x = rng.integers(0, 3, (40, 2)).astype(np.float64)[rng.integers(0, 40, 200)]
-    monkeypatch.setattr(clusters, "_row_hashes", lambda rows: np.zeros(rows.shape[0], np.uint64))
+    monkeypatch.setattr(clusters, "row_hashes", lambda rows: np.zeros(rows.shape[0], np.uint64))
     first, inverse = clusters._distinct(x)
     assert np.array_equal(x, x[first][inverse])
     assert len(np.unique(x, axis=0)) == first.size
@@ -380,5 +380,5 @@ def test_row_hash_kernel_equals_numpy():
     rng = np.random.default_rng(3)
     for dtype in (np.float32, np.float64):
         x = rng.normal(size=(3000, 40)).astype(dtype)             # 120,000 values: the kernel
-        pieces = np.concatenate([clusters._row_hashes(x[lo:lo + 500]) for lo in range(0, 3000, 500)])
-        assert clusters._row_hashes(x).tolist() == pieces.tolist()  # 20,000 values each: numpy
+        pieces = np.concatenate([clusters.row_hashes(x[lo:lo + 500]) for lo in range(0, 3000, 500)])
+        assert clusters.row_hashes(x).tolist() == pieces.tolist()  # 20,000 values each: numpy

@@ -282,7 +282,7 @@ def test_numeric_cuts_from_a_sample(client):
     """With fewer sample rows than rows, cut points come from the sample and still find the
     planted threshold; the same seed gives the same items."""
     from slicefind.distributed import mine_dask
-    from slicefind.slices import default_min_rows
+    from slicefind.records import default_min_rows
 
     frame = _table(n=12_000, seed=6)
     ddf = _uneven(frame, [5000, 1000, 6000])

@@ -9,9 +9,10 @@ from scipy.stats import poisson_binom
 
 import slicefind as sf
 from slicefind.cli import main
-from slicefind.labelcheck import (LABEL_SOURCE, UNION_KEY, label_check_slices, nested_tests,
-                                  poisson_binomial_sf)
-from slicefind.slices import ID_PREFIXES, SOURCES
+from slicefind.records import LABEL_SOURCE
+from slicefind.labelcheck import UNION_KEY, label_check_slices, nested_tests, poisson_binomial_sf
+from slicefind.slices import ID_PREFIXES
+from slicefind.records import SOURCES
 from slicefind.exceptions import SlicefindTypeError, SlicefindValueError
 from slicefind.table import build_eval_table
 from slicefind.workspace import Workspace

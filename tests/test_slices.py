@@ -4,7 +4,8 @@ import pandas as pd
 import pytest
 
 import slicefind as sf
-from slicefind.slices import TABLE_COLUMNS, default_min_rows, jaccard
+from slicefind.slices import TABLE_COLUMNS
+from slicefind.records import default_min_rows, jaccard
 
 
 def _depot(n=6000, seed=0, planted=True):

@@ -437,7 +437,7 @@ def test_artifacts_round_trip_without_pickle(ws):
     from dataclasses import dataclass
 
     from slicefind.items import Item
-    from slicefind.slices import Slice
+    from slicefind.records import Slice
 
     frame = pd.DataFrame({"label": [3, 8], "prediction": [8, 3], "n_errors": [12, 5]},
                          index=pd.Index(["a", "b"], name="pair"))

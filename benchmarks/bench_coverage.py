@@ -37,11 +37,11 @@ from dataclasses import replace
 import numpy as np
 import pandas as pd
 
-from slicefind.queue import REST, build_queue
-from slicefind.slices import find_slices
+from slicefind.review.queue import REST, build_queue
+from slicefind.discovery.find import find_slices
 from slicefind.stats import (mover_sum_interval, score_sum_interval, stratified_interval,
                              stratified_proportion, wilson_interval_fpc, z_value)
-from slicefind.tally import UNTAGGED, tally
+from slicefind.review.tally import UNTAGGED, tally
 
 CATEGORIES = ("faded ink", "torn label", "overwritten digit", "skewed label")
 

@@ -10,7 +10,7 @@ The Dask scan time includes reading the Parquet files (``dd.read_parquet`` is la
 in-memory engine's reading is its "load s", outside its scan time. Before the clock starts
 the workers import what the in-memory process has imported by then or imports while
 loading (slicefind, pyarrow, dask.dataframe); neither has numba loaded. Below each size, the
-Dask engine's phases (median over the runs, from the ``slicefind.distributed`` DEBUG
+Dask engine's phases (median over the runs, from the ``slicefind.discovery.distributed`` DEBUG
 log; "rest of find_slices" is scoring and selection on the driver, gathering each shown
 slice's rows from the workers).
 
@@ -124,7 +124,7 @@ def _child(mode: str, folder: str, out: str) -> None:
             def emit(self, record):
                 result["phases"] = dict(getattr(record, "seconds", {}))
 
-        engine_log = logging.getLogger("slicefind.distributed")
+        engine_log = logging.getLogger("slicefind.discovery.distributed")
         engine_log.setLevel(logging.DEBUG)
         engine_log.addHandler(Phases())
 
@@ -132,7 +132,7 @@ def _child(mode: str, folder: str, out: str) -> None:
                           dashboard_address=None, memory_limit="4GB") as cluster, Client(cluster) as client:
             # workers up, with the libraries the in-memory child has imported before its clock
             # starts (slicefind) or reads with outside it (pyarrow); numba is left to both scans
-            client.run(lambda: [__import__(m) for m in ("slicefind.distributed", "pyarrow.parquet",
+            client.run(lambda: [__import__(m) for m in ("slicefind.discovery.distributed", "pyarrow.parquet",
                                                         "dask.dataframe")])
             if data_set == "embeddings":
                 options["embeddings"] = "emb"

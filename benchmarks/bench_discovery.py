@@ -59,7 +59,7 @@ sampling
     options) against a full fit (``sample_above`` raised above the row count): adjusted
     Rand index of the region and error-mode labels (scikit-learn ``adjusted_rand_score``;
     noise convention: every noise row is a cluster of its own,
-    `slicefind.clusters.noise_as_singletons`), the same index between two full fits
+    `slicefind.discovery.clusters.noise_as_singletons`), the same index between two full fits
     with different seeds as a yardstick, and planted-slice recall of both paths.
 
 options
@@ -210,7 +210,7 @@ def _worker(args) -> None:
     from dataclasses import replace
 
     from slicefind import find_slices
-    from slicefind.clusters import cluster_slices
+    from slicefind.discovery.clusters import cluster_slices
 
     gc.collect()
 
@@ -336,7 +336,7 @@ def sampling_section(rows: int, seeds: list[int]) -> dict:
 
     from sklearn.metrics import adjusted_rand_score  # the named check
 
-    from slicefind.clusters import noise_as_singletons
+    from slicefind.discovery.clusters import noise_as_singletons
     from slicefind.demodata import make_depot
 
     full_opts = {"sample_above": rows + 1, "sample_size": rows, "progress": False}
@@ -407,7 +407,7 @@ _OPTION_CODE = {
     "umap.UMAP, seeded": "umap.UMAP(n_components=8, random_state=0).fit_transform(x)",
     "umap.UMAP, unseeded (parallel)": "umap.UMAP(n_components=8).fit_transform(x)",
     "umap.UMAP, seeded, exact kNN passed in": (
-        "from slicefind.clusters import _knn\n"
+        "from slicefind.discovery.clusters import _knn\n"
         "idx, dist = _knn(x.astype(np.float32), 15)\n"
         "umap.UMAP(n_components=8, random_state=0, precomputed_knn=(idx, dist, None)).fit_transform(x)"),
     "slicefind: exact kNN + numpy fuzzy graph + seeded layout": (
@@ -625,7 +625,7 @@ def placing_section(rows: int, seed: int) -> dict:
     from sklearn.metrics import adjusted_rand_score  # the named check
 
     from slicefind import find_slices
-    from slicefind.clusters import noise_as_singletons
+    from slicefind.discovery.clusters import noise_as_singletons
     from slicefind.demodata import make_depot
 
     depot = make_depot(rows, random_state=seed)

@@ -42,11 +42,11 @@ import time
 import numpy as np
 
 import slicefind
-from slicefind import review
+from slicefind.page import server as review
 from slicefind.demodata import make_depot
-from slicefind.describe import describe_slice
-from slicefind.queue import build_queue
-from slicefind.slices import find_slices
+from slicefind.discovery.describe import describe_slice
+from slicefind.review.queue import build_queue
+from slicefind.discovery.find import find_slices
 from slicefind.workspace import Workspace
 
 CATEGORIES = ("faded print", "smeared ink", "tape over label")

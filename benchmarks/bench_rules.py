@@ -287,9 +287,9 @@ def worker_ours(args):
     frame = pd.read_pickle(args.frame)
     errors = np.load(args.errors)
     import slicefind
-    import slicefind.bitset as bitset_mod
-    import slicefind.rules as rules_mod
-    import slicefind.slices as slices_mod
+    import slicefind.discovery.bitset as bitset_mod
+    import slicefind.discovery.rules as rules_mod
+    import slicefind.discovery.find as slices_mod
     import slicefind.stats as stats_mod
 
     stages = _Stages()
@@ -348,7 +348,7 @@ def worker_reference(args):
     """One mlxtend pipeline: mine the error rows, then count each itemset over all rows."""
     from mlxtend.frequent_patterns import apriori, fpgrowth
 
-    from slicefind import bitset
+    from slicefind.discovery import bitset
 
     d = _load_items(args.items)
     n_rows, n_err = int(d["n_rows_total"]), int(d["n_errors_total"])
@@ -475,8 +475,8 @@ def run_size(n_rows, args, workdir):
 
     # prime the numba disk cache and get the items the references mine
     import slicefind
-    from slicefind.bitset import n_words as bitset_words
-    from slicefind.rules import search_rules
+    from slicefind.discovery.bitset import n_words as bitset_words
+    from slicefind.discovery.rules import search_rules
     found = slicefind.find_slices(frame, errors=errors, max_terms=MAX_TERMS, engine="bitset")
     items = found.extras["items"]
     min_rows, min_errors = found.params["min_rows"], found.params["min_errors"]

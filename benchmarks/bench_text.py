@@ -110,7 +110,7 @@ ends = np.cumsum(lengths)
 texts = [" ".join(words[e - l:e]) for e, l in zip(ends, lengths)]
 del words
 before = rss("VmRSS")
-from slicefind.text import embed_texts, text_features
+from slicefind.discovery.text import embed_texts, text_features
 from sklearn.decomposition import TruncatedSVD
 from sklearn.feature_extraction.text import TfidfVectorizer
 from sklearn.pipeline import make_pipeline

@@ -12,13 +12,13 @@ except PackageNotFoundError:  # running from a source tree that was not installe
 
 from slicefind.compare import Comparison, compare
 from slicefind.decision import decision_paragraphs
-from slicefind.describe import SliceDescription, describe_slice
+from slicefind.discovery.describe import SliceDescription, describe_slice
 from slicefind.exceptions import (SlicefindError, SlicefindTypeError, SlicefindValueError,
                                   WorkspaceBusyError)
-from slicefind.queue import Queue, build_queue
-from slicefind.slices import FoundSlices, find_slices
-from slicefind.tally import Tally, read_reviews, tally
-from slicefind.text import embed_texts, text_features
+from slicefind.review.queue import Queue, build_queue
+from slicefind.discovery.find import FoundSlices, find_slices
+from slicefind.review.tally import Tally, read_reviews, tally
+from slicefind.discovery.text import embed_texts, text_features
 from slicefind.workspace import Workspace, data_fingerprint
 
 __all__ = [

@@ -136,7 +136,7 @@ def _port(text: str) -> int:
 
 def _write_csv(frame: pd.DataFrame, path: str) -> None:
     """A table for people as CSV, its text cells safe to open in a spreadsheet."""
-    from slicefind.table import neutralize_formulas
+    from slicefind.discovery.table import neutralize_formulas
 
     neutralize_formulas(frame).to_csv(path, index=False)
 
@@ -343,7 +343,7 @@ def _write_report(ws, found, out=None, *, tally_result=None, simulated=False) ->
 
 def _describe_top(found, text_column=None, n=8):
     """SliceDescriptions of the top slices, for the report and the review page."""
-    from slicefind.describe import describe_slice
+    from slicefind.discovery.describe import describe_slice
 
     return {sid: describe_slice(found, sid, text_column=text_column)
             for sid in found.table["slice_id"].head(n)}
@@ -591,7 +591,7 @@ def _print_tally(result, together: Sequence[Sequence[str]] = ()) -> None:
     import textwrap
 
     from slicefind.decision import decision_paragraphs
-    from slicefind.tally import WRONG_LABEL
+    from slicefind.review.tally import WRONG_LABEL
 
     cats = result.categories
     print(f"{'category':<28} {'tagged':>6} {'share of errors [95%]':>26} {'error rate if fixed':>20}")
@@ -744,7 +744,7 @@ def cmd_compare(args) -> int:
 
 
 def cmd_review(args) -> int:
-    from slicefind.review import serve
+    from slicefind.page.server import serve
 
     serve(args.workspace, port=args.port, open_browser=args.open, images=args.images,
           image_column=args.image_column, text_column=args.text_column,
@@ -810,7 +810,7 @@ def _simulated_loop(ws, found, demo, out, *, seed, step):
     """The demo after its scan: queue, the simulated reviewer's tags and names, tally, report."""
     import slicefind as sf
     from slicefind.demodata import simulated_reviews
-    from slicefind.tally import normalize_tag
+    from slicefind.review.tally import normalize_tag
 
     with step("drawing the review queue (100 errors)"):
         queue = sf.build_queue(found, budget=100, rest=20, random_state=seed)

@@ -25,11 +25,11 @@ import numpy as np
 import pandas as pd
 
 from slicefind.exceptions import SlicefindTypeError, SlicefindValueError, check_level, did_you_mean
-from slicefind.records import jaccard
-from slicefind.slices import FoundSlices, find_slices
+from slicefind.discovery.records import jaccard
+from slicefind.discovery.find import FoundSlices, find_slices
 from slicefind.stats import bh_qvalues, mcnemar_exact, wilson_interval
-from slicefind.table import error_flags, labels_equal, mined_roles
-from slicefind.tally import Tally, UNTAGGED, normalize_tag
+from slicefind.discovery.table import error_flags, labels_equal, mined_roles
+from slicefind.review.tally import Tally, UNTAGGED, normalize_tag
 from slicefind.values import json_scalar
 from slicefind.workspace import Workspace
 

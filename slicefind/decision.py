@@ -11,7 +11,7 @@ import numpy as np
 import pandas as pd
 
 from slicefind.exceptions import SlicefindTypeError, SlicefindValueError
-from slicefind.tally import Tally, UNTAGGED, WRONG_LABEL
+from slicefind.review.tally import Tally, UNTAGGED, WRONG_LABEL
 
 __all__ = ["decision_paragraphs"]
 
@@ -45,7 +45,7 @@ def decision_paragraphs(result, *, top: int = 3) -> list[str]:
     Parameters
     ----------
     result : Tally
-        From `slicefind.tally.tally` (or `Workspace.tally`).
+        From `slicefind.review.tally.tally` (or `Workspace.tally`).
     top : int, default=3
         How many of the largest categories get a paragraph, ``>= 1``.
 
@@ -58,8 +58,8 @@ def decision_paragraphs(result, *, top: int = 3) -> list[str]:
     Examples
     --------
     >>> from slicefind.demodata import example_scan
-    >>> from slicefind.queue import build_queue
-    >>> from slicefind.tally import tally
+    >>> from slicefind.review.queue import build_queue
+    >>> from slicefind.review.tally import tally
     >>> queue = build_queue(example_scan(), budget=30, rest=10)
     >>> sheet = queue.table[["row", "stratum"]].copy()
     >>> sheet["reviewed"] = "yes"

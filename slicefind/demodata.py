@@ -24,7 +24,7 @@ from typing import Mapping
 import numpy as np
 import pandas as pd
 
-from slicefind.slices import find_slices
+from slicefind.discovery.find import find_slices
 
 __all__ = ["Depot", "Planted", "make_depot", "make_stamped", "simulated_reviews", "example_scan",
            "SCANNERS", "LABEL_STOCKS", "DEPOTS"]
@@ -360,7 +360,7 @@ def simulated_reviews(queue, planted: Mapping[str, Planted]) -> pd.DataFrame:
 
     Each queued error is tagged with the planted modes whose rows hold it (ground truth
     that real data never gives); the others stay untagged. Columns ``row, reviewed,
-    tags, note``, as `slicefind.tally.read_reviews` reads them.
+    tags, note``, as `slicefind.review.tally.read_reviews` reads them.
 
     Examples
     --------

@@ -19,9 +19,9 @@ import numpy as np
 import pandas as pd
 
 from slicefind.decision import decision_paragraphs
-from slicefind.describe import label_column, prediction_column
-from slicefind.tally import WRONG_LABEL
-from slicefind.text import mark_terms
+from slicefind.discovery.describe import label_column, prediction_column
+from slicefind.review.tally import WRONG_LABEL
+from slicefind.discovery.text import mark_terms
 from slicefind.values import value_text
 
 __all__ = ["ReportInputs", "render_report", "write_report", "CAUTIONS", "TEXT_CAUTION", "MAX_SLICES_SHOWN",

@@ -2,7 +2,7 @@
 import pytest
 
 from review_helpers import depot_found
-from slicefind.queue import build_queue
+from slicefind.review.queue import build_queue
 from slicefind.workspace import Workspace, data_fingerprint
 
 

@@ -3,8 +3,8 @@ import numpy as np
 import pandas as pd
 from hypothesis import strategies as st
 
-from slicefind.slices import FoundSlices, find_slices
-from slicefind.table import build_eval_table
+from slicefind.discovery.find import FoundSlices, find_slices
+from slicefind.discovery.table import build_eval_table
 
 
 def make_found(errors, slices, *, frame=None, id_column="parcel", label=None, prediction=None):

@@ -12,9 +12,9 @@ from hypothesis import strategies as st
 
 from review_helpers import overlapping_slices, strata_found
 from slicefind.cli import main
-from slicefind.queue import ADAPTIVE_RULE, REST, _adaptive_allocation, build_queue
+from slicefind.review.queue import ADAPTIVE_RULE, REST, _adaptive_allocation, build_queue
 from slicefind.exceptions import SlicefindTypeError, SlicefindValueError
-from slicefind.tally import tally
+from slicefind.review.tally import tally
 from slicefind.workspace import Workspace
 
 

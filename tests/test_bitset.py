@@ -1,10 +1,10 @@
-"""Tests for slicefind.bitset: packing and the counting kernels."""
+"""Tests for slicefind.discovery.bitset: packing and the counting kernels."""
 import numpy as np
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from slicefind import bitset
+from slicefind.discovery import bitset
 
 
 @given(st.integers(1, 300), st.integers(0, 2**32 - 1))

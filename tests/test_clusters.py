@@ -1,4 +1,4 @@
-"""Tests for slicefind.clusters: reduction, regions, error modes, sampling, determinism."""
+"""Tests for slicefind.discovery.clusters: reduction, regions, error modes, sampling, determinism."""
 import re
 import subprocess
 import sys
@@ -13,11 +13,12 @@ from sklearn.datasets import make_blobs
 from sklearn.metrics import adjusted_rand_score
 
 import slicefind as sf
-from slicefind import clusters
-from slicefind.clusters import NOISE, DisconnectedGraphWarning, cluster_slices, noise_as_singletons
-from slicefind.hierarchy import ROOT, Tree
-from slicefind.records import jaccard
-from slicefind.table import build_eval_table
+from slicefind.discovery import clusters
+from slicefind.discovery.clusters import (NOISE, DisconnectedGraphWarning, cluster_slices,
+                                          noise_as_singletons)
+from slicefind.discovery.hierarchy import ROOT, Tree
+from slicefind.discovery.records import jaccard
+from slicefind.discovery.table import build_eval_table
 
 N_BLOB = 300
 ERROR_BLOB = 3
@@ -289,8 +290,8 @@ def test_too_few_distinct_rows_give_no_clusters():
 
 
 def test_import_stays_light():
-    """Importing slicefind (and slicefind.clusters) loads neither umap, hdbscan nor numba."""
-    code = ("import sys, slicefind, slicefind.clusters, slicefind.describe, slicefind.demodata; "
+    """Importing slicefind (and slicefind.discovery.clusters) loads neither umap, hdbscan nor numba."""
+    code = ("import sys, slicefind, slicefind.discovery.clusters, slicefind.discovery.describe, slicefind.demodata; "
             "print(sorted(m for m in ('umap', 'hdbscan', 'numba', 'pynndescent') if m in sys.modules))")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
     assert "[]" == out.stdout.strip()

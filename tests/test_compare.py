@@ -113,9 +113,9 @@ from review_helpers import make_found  # noqa: E402
 from slicefind.cli import run_compare  # noqa: E402
 from slicefind.compare import (COMPARE_COLUMNS, NEW_SLICE_COLUMNS, Comparison, compare,
                                format_comparison)  # noqa: E402
-from slicefind.queue import build_queue  # noqa: E402
+from slicefind.review.queue import build_queue  # noqa: E402
 from slicefind.report import ReportInputs, render_report  # noqa: E402
-from slicefind.slices import find_slices  # noqa: E402
+from slicefind.discovery.find import find_slices  # noqa: E402
 from slicefind.stats import bh_qvalues, wilson_interval  # noqa: E402
 from slicefind.workspace import Workspace, data_fingerprint  # noqa: E402
 

@@ -7,7 +7,7 @@ import pytest
 
 import slicefind as sf
 from slicefind.demodata import DEPOTS, LABEL_STOCKS, SCANNERS, make_depot, make_stamped
-from slicefind.records import jaccard
+from slicefind.discovery.records import jaccard
 
 N = 3000
 

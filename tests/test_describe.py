@@ -1,4 +1,4 @@
-"""Tests for slicefind.describe: enriched items, confusions, terms, exemplars, summaries."""
+"""Tests for slicefind.discovery.describe: enriched items, confusions, terms, exemplars, summaries."""
 import math
 
 import numpy as np
@@ -6,10 +6,11 @@ import pandas as pd
 import pytest
 
 import slicefind as sf
-from slicefind.describe import (confusions, describe_rows, describe_slice, distinctive_terms,
-                                enriched_items, exemplars, label_shares)
-from slicefind.items import build_items
-from slicefind.table import build_eval_table
+from slicefind.discovery.describe import (confusions, describe_rows, describe_slice,
+                                          distinctive_terms, enriched_items, exemplars,
+                                          label_shares)
+from slicefind.discovery.items import build_items
+from slicefind.discovery.table import build_eval_table
 
 SLICE = np.arange(20)
 

@@ -1,4 +1,4 @@
-"""Tests for slicefind.distributed: the Dask engine against the in-memory engine."""
+"""Tests for slicefind.discovery.distributed: the Dask engine against the in-memory engine."""
 import numpy as np
 import pandas as pd
 import pytest
@@ -99,7 +99,7 @@ def test_worker_killed_mid_computation_changes_nothing(client, monkeypatch, opti
     rows lost) is replaced, its tasks rerun from their partitions, and the result is the same."""
     import os
 
-    import slicefind.distributed as engine
+    import slicefind.discovery.distributed as engine
 
     frame = _binary_table(seed=3)
     ddf = _uneven(frame, [4000, 4000, 4000])
@@ -271,7 +271,7 @@ def test_items_with_the_same_rows_are_kept_once(client):
 
 def test_smallest_keys_are_a_stable_argsort_head():
     """The sample's rows: the k smallest keys in key order, ties by position."""
-    from slicefind.distributed import _smallest
+    from slicefind.discovery.distributed import _smallest
 
     keys = np.random.default_rng(0).integers(0, 50, 1000).astype(float)   # many ties
     for k in (1, 7, 100, 999, 1000, 5000):
@@ -281,8 +281,8 @@ def test_smallest_keys_are_a_stable_argsort_head():
 def test_numeric_cuts_from_a_sample(client):
     """With fewer sample rows than rows, cut points come from the sample and still find the
     planted threshold; the same seed gives the same items."""
-    from slicefind.distributed import mine_dask
-    from slicefind.records import default_min_rows
+    from slicefind.discovery.distributed import mine_dask
+    from slicefind.discovery.records import default_min_rows
 
     frame = _table(n=12_000, seed=6)
     ddf = _uneven(frame, [5000, 1000, 6000])
@@ -447,7 +447,7 @@ def test_worker_killed_before_rows_are_placed_changes_nothing(client, monkeypatc
     the clusters equal the in-memory ones."""
     import os
 
-    import slicefind.distributed as engine
+    import slicefind.discovery.distributed as engine
 
     frame, x = _with_vectors(n=3000, seed=6, d=6)
     plain = frame.drop(columns="emb")

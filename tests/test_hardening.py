@@ -14,11 +14,11 @@ import numpy as np
 import pandas as pd
 import pytest
 
-import slicefind.workspace as wsmod
+import slicefind.workspace.store as wsmod
 from slicefind.cli import _read_table, main
 from slicefind.exceptions import WorkspaceBusyError
-from slicefind.table import neutralize_formulas, restore_formula_text
-from slicefind.tally import read_reviews
+from slicefind.discovery.table import neutralize_formulas, restore_formula_text
+from slicefind.review.tally import read_reviews
 from slicefind.workspace import DB_NAME, Workspace
 
 

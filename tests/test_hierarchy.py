@@ -1,4 +1,4 @@
-"""Tests for slicefind.hierarchy: the condensed tree as nested nodes, votes, subtree counts."""
+"""Tests for slicefind.discovery.hierarchy: the condensed tree as nested nodes, votes, subtree counts."""
 import hdbscan
 import numpy as np
 import pytest
@@ -6,8 +6,9 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from sklearn.datasets import make_blobs
 
-from slicefind.clusters import _renumber
-from slicefind.hierarchy import ROOT, Tree, condensed_tree, subtree_rows, subtree_sums, tree_vote
+from slicefind.discovery.clusters import _renumber
+from slicefind.discovery.hierarchy import (ROOT, Tree, condensed_tree, subtree_rows, subtree_sums,
+                                           tree_vote)
 
 
 @pytest.fixture(scope="module")

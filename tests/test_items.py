@@ -1,12 +1,12 @@
-"""Tests for slicefind.items: categorical, rare, missing, numeric and datetime items."""
+"""Tests for slicefind.discovery.items: categorical, rare, missing, numeric and datetime items."""
 import numpy as np
 import pandas as pd
 import pytest
 from hypothesis import given
 from hypothesis import strategies as st
 
-from slicefind.items import build_items, readable_cut
-from slicefind.table import build_eval_table
+from slicefind.discovery.items import build_items, readable_cut
+from slicefind.discovery.table import build_eval_table
 
 
 def _texts(frame, errors, **kw):

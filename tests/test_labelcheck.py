@@ -9,12 +9,13 @@ from scipy.stats import poisson_binom
 
 import slicefind as sf
 from slicefind.cli import main
-from slicefind.records import LABEL_SOURCE
-from slicefind.labelcheck import UNION_KEY, label_check_slices, nested_tests, poisson_binomial_sf
-from slicefind.slices import ID_PREFIXES
-from slicefind.records import SOURCES
+from slicefind.discovery.records import LABEL_SOURCE
+from slicefind.discovery.labelcheck import (UNION_KEY, label_check_slices, nested_tests,
+                                            poisson_binomial_sf)
+from slicefind.discovery.find import ID_PREFIXES
+from slicefind.discovery.records import SOURCES
 from slicefind.exceptions import SlicefindTypeError, SlicefindValueError
-from slicefind.table import build_eval_table
+from slicefind.discovery.table import build_eval_table
 from slicefind.workspace import Workspace
 
 K = 10
@@ -426,7 +427,7 @@ def test_cli_single_column_is_the_predicted_class(tmp_path, capsys):
 
 def test_tally_names_the_label_check_after_the_reserved_tag(keyed_sevens):
     """A label-check stratum is named (wrong label) unless named otherwise; its precision counts that tag."""
-    from slicefind.tally import WRONG_LABEL, tally
+    from slicefind.review.tally import WRONG_LABEL, tally
     found = keyed_sevens[2]
     queue = sf.build_queue(found, budget=40, rest=10)
     check = [s for s, src in zip(queue.strata["stratum"], queue.strata["source"]) if src == "label_check"]

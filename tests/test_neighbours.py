@@ -1,11 +1,11 @@
-"""slicefind.neighbours: the faiss index used to place rows, checked against brute force."""
+"""slicefind.discovery.neighbours: the faiss index used to place rows, checked against brute force."""
 import subprocess
 import sys
 
 import numpy as np
 import pytest
 
-from slicefind.neighbours import EXACT_BELOW, NeighbourIndex, _own_loops
+from slicefind.discovery.neighbours import EXACT_BELOW, NeighbourIndex, _own_loops
 
 
 def _brute(points, query, k):
@@ -54,7 +54,7 @@ import sys, hashlib
 for name in sys.argv[1].split(","):
     __import__(name)
 import numpy as np
-from slicefind.clusters import _knn
+from slicefind.discovery.clusters import _knn
 rng = np.random.default_rng(5)
 z = np.round(rng.normal(size=(3000, 6)), 1)          # many exactly tied distances
 idx, dist = _knn(z, 15)

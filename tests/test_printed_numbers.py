@@ -227,7 +227,7 @@ def test_tally_category_lines_are_tally_csv(loop):
 
 def test_tally_csv_counts_are_the_sheet(loop):
     """tally.csv's tagged counts and verdicts.csv's reviewed and named counts recount from the sheet."""
-    from slicefind.tally import UNTAGGED, WRONG_LABEL
+    from slicefind.review.tally import UNTAGGED, WRONG_LABEL
 
     sheet = loop["sheet"]
     done = sheet[sheet["reviewed"] == "yes"]
@@ -249,7 +249,7 @@ def test_tally_csv_counts_are_the_sheet(loop):
 
 def test_tally_wrong_label_line_is_its_category_row(loop):
     """The corrected error rate printed is the (wrong label) row's 'error rate if fixed'."""
-    from slicefind.tally import WRONG_LABEL
+    from slicefind.review.tally import WRONG_LABEL
 
     match = re.search(rf"^{re.escape(WRONG_LABEL)}: error rate with the labels corrected ({PCT}) "
                       rf"\[({PCT})–({PCT})\], against ({PCT}) measured", loop["tally"], re.M)
@@ -322,7 +322,7 @@ UNTAGGED_PARAGRAPH = re.compile(
 
 def test_plain_words_numbers_are_tally_csv_and_verdicts_csv(loop):
     """Every number of the 'In plain words' paragraphs is tally.csv's, verdicts.csv's or the data's."""
-    from slicefind.tally import UNTAGGED, WRONG_LABEL
+    from slicefind.review.tally import UNTAGGED, WRONG_LABEL
 
     cats = loop["categories"].set_index("category")
     verdicts = loop["verdicts"].set_index("slice_id")

@@ -8,11 +8,11 @@ from hypothesis import strategies as st
 from scipy import stats as sps
 
 from review_helpers import depot_found, make_found, overlapping_slices, strata_found
-from slicefind.queue import MIN_PER_STRATUM, REST, _allocate, build_queue
-from slicefind.slices import FoundSlices
+from slicefind.review.queue import MIN_PER_STRATUM, REST, _allocate, build_queue
+from slicefind.discovery.find import FoundSlices
 from slicefind.exceptions import SlicefindTypeError, SlicefindValueError
-from slicefind.table import build_eval_table
-from slicefind.tally import read_reviews
+from slicefind.discovery.table import build_eval_table
+from slicefind.review.tally import read_reviews
 
 
 @pytest.fixture(scope="module")

@@ -9,7 +9,7 @@ import numpy as np
 import pytest
 
 import slicefind as sf
-from slicefind.records import jaccard
+from slicefind.discovery.records import jaccard
 
 pytest.importorskip("statsmodels.api")
 from real_tables import scored  # noqa: E402  (tests/ is on the path, as for review_helpers)

@@ -9,7 +9,7 @@ import pandas as pd
 import pytest
 
 import slicefind as sf
-from slicefind.describe import describe_slice
+from slicefind.discovery.describe import describe_slice
 from browser import chromium_or_skip
 from slicefind.report import CAUTIONS, ReportInputs, render_report, write_report
 

@@ -16,10 +16,10 @@ import pytest
 
 import slicefind as sf
 from browser import CHROMIUM_ARGS, chromium_or_skip
-from slicefind import review
-from slicefind.describe import describe_slice
-from slicefind.queue import build_queue
-from slicefind.tally import WRONG_LABEL, read_reviews, tally
+from slicefind.page import server as review
+from slicefind.discovery.describe import describe_slice
+from slicefind.review.queue import build_queue
+from slicefind.review.tally import WRONG_LABEL, read_reviews, tally
 from slicefind.workspace import Workspace
 
 SHOW = ("scanner", "belt_speed", "label_stock", "shift")
@@ -555,7 +555,7 @@ def test_serve_prints_the_url_and_stops_on_ctrl_c(workspace):
     import subprocess
     import sys
 
-    code = "import sys; from slicefind.review import serve; serve(sys.argv[1])"
+    code = "import sys; from slicefind.page.server import serve; serve(sys.argv[1])"
     process = subprocess.Popen([sys.executable, "-c", code, workspace], stdout=subprocess.PIPE,
                                stderr=subprocess.PIPE, text=True)
     try:

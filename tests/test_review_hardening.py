@@ -15,7 +15,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from slicefind import review
+from slicefind.page import server as review
 from slicefind.exceptions import SlicefindValueError, WorkspaceBusyError
 from slicefind.workspace import Workspace
 # the depot workspace and request helpers of the review tests (fixtures are used by name)

@@ -1,4 +1,4 @@
-"""Tests for slicefind.rules: the levelwise search and its two engines."""
+"""Tests for slicefind.discovery.rules: the levelwise search and its two engines."""
 import itertools
 
 import numpy as np
@@ -6,10 +6,10 @@ import pandas as pd
 import pytest
 from hypothesis import HealthCheck, given, settings
 
-from slicefind import bitset
-from slicefind.items import Item, ItemSet, build_items
-from slicefind.rules import refinement_pvalues, search_rules
-from slicefind.table import build_eval_table
+from slicefind.discovery import bitset
+from slicefind.discovery.items import Item, ItemSet, build_items
+from slicefind.discovery.rules import refinement_pvalues, search_rules
+from slicefind.discovery.table import build_eval_table
 
 from strategies import small_tables
 

@@ -1,11 +1,11 @@
-"""Tests for slicefind.slices: find_slices end to end on planted and null data."""
+"""Tests for slicefind.discovery.find: find_slices end to end on planted and null data."""
 import numpy as np
 import pandas as pd
 import pytest
 
 import slicefind as sf
-from slicefind.slices import TABLE_COLUMNS
-from slicefind.records import default_min_rows, jaccard
+from slicefind.discovery.find import TABLE_COLUMNS
+from slicefind.discovery.records import default_min_rows, jaccard
 
 
 def _depot(n=6000, seed=0, planted=True):

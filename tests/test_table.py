@@ -1,10 +1,10 @@
-"""Tests for slicefind.table: validation, error flags and column kinds."""
+"""Tests for slicefind.discovery.table: validation, error flags and column kinds."""
 import numpy as np
 import pandas as pd
 import pytest
 
 import slicefind as sf
-from slicefind.table import CATEGORICAL, DATETIME, NUMERIC, build_eval_table
+from slicefind.discovery.table import CATEGORICAL, DATETIME, NUMERIC, build_eval_table
 from slicefind.exceptions import SlicefindTypeError, SlicefindValueError
 
 

@@ -10,10 +10,10 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from review_helpers import strata_found
-from slicefind.queue import REST, build_queue
+from slicefind.review.queue import REST, build_queue
 from slicefind.stats import cochran_sample_size, wilson_interval_fpc
 from slicefind.exceptions import SlicefindTypeError, SlicefindValueError
-from slicefind.tally import MAX_LISTED, UNTAGGED, normalize_tag, read_reviews, tally
+from slicefind.review.tally import MAX_LISTED, UNTAGGED, normalize_tag, read_reviews, tally
 
 
 def _prefix_sheet(queue, plan):

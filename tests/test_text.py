@@ -1,4 +1,4 @@
-"""Tests for slicefind.text and find_slices(text=): embeddings, surface features, marked terms.
+"""Tests for slicefind.discovery.text and find_slices(text=): embeddings, surface features, marked terms.
 
 External checks: scikit-learn's own TfidfVectorizer / TruncatedSVD / Normalizer pipeline
 for the default embedding, scikit-learn's CountVectorizer analyzer for the token counts,
@@ -13,11 +13,12 @@ import pandas as pd
 import pytest
 
 import slicefind as sf
+import slicefind.discovery.text as textmod
 from slicefind.demotext import make_helpdesk
 from slicefind.report import TEXT_CAUTION, marked_html
 from slicefind.exceptions import SlicefindTypeError, SlicefindValueError
-from slicefind.text import (TOKEN_PATTERN, TermCounts, check_texts, embed_texts, lsa_settings,
-                            mark_terms, text_features)
+from slicefind.discovery.text import (TOKEN_PATTERN, TermCounts, check_texts, embed_texts,
+                                      lsa_settings, mark_terms, text_features)
 
 
 @pytest.fixture(scope="module")
@@ -95,7 +96,7 @@ def _reference_features(text):
 def test_text_features_match_python_string_methods():
     """Token counts match scikit-learn's analyzer; shares match str.isdecimal/isupper/isalpha/ord."""
     got = text_features(TEXTS, prefix="m")
-    assert [f"m.{k}" for k in sf.text.TEXT_FEATURES] == list(got.columns)
+    assert [f"m.{k}" for k in textmod.TEXT_FEATURES] == list(got.columns)
     for i, text in enumerate(TEXTS):
         want = _reference_features(text)
         assert want == {k: got.at[i, f"m.{k}"] for k in want}, text
@@ -107,7 +108,7 @@ def test_text_features_across_chunks(monkeypatch):
     """Texts counted in several chunks give the same features as in one."""
     texts = [f"Row {i}: ÄB cd {'x' * (i % 7)}\n" * (1 + i % 3) for i in range(250)]
     whole = text_features(texts)
-    monkeypatch.setattr(sf.text, "_CHUNK_TEXTS", 17)
+    monkeypatch.setattr(textmod, "_CHUNK_TEXTS", 17)
     pd.testing.assert_frame_equal(whole, text_features(texts))
 
 
@@ -266,7 +267,7 @@ def test_report_escapes_text_around_marks():
 
 def test_report_and_review_page_mark_the_words(desk, tmp_path):
     """The report's text exemplars and the page's queued rows carry the marked words, as text only."""
-    from slicefind import review
+    from slicefind.page import server as review
     from slicefind.cli import _describe_top
     from slicefind.report import ReportInputs, render_report
     from browser import CHROMIUM_ARGS, chromium_or_skip

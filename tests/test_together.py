@@ -6,10 +6,10 @@ import pytest
 from review_helpers import strata_found
 from slicefind.cli import main
 from slicefind.decision import decision_paragraphs
-from slicefind.queue import REST, build_queue
+from slicefind.review.queue import REST, build_queue
 from slicefind.stats import stratified_interval
 from slicefind.exceptions import SlicefindTypeError, SlicefindValueError
-from slicefind.tally import PAIR_COLUMNS, UNTAGGED, WRONG_LABEL, normalize_tag, tally
+from slicefind.review.tally import PAIR_COLUMNS, UNTAGGED, WRONG_LABEL, normalize_tag, tally
 
 
 @pytest.fixture()

@@ -11,11 +11,11 @@ import numpy as np
 import pandas as pd
 import pytest
 
-import slicefind.workspace as wsmod
+import slicefind.workspace.store as wsmod
 from review_helpers import strata_found
-from slicefind.queue import build_queue
+from slicefind.review.queue import build_queue
 from slicefind.exceptions import SlicefindTypeError, SlicefindValueError
-from slicefind.tally import tally
+from slicefind.review.tally import tally
 from slicefind.workspace import DB_NAME, SCHEMA_VERSION, Workspace, data_fingerprint
 
 
@@ -436,8 +436,8 @@ def test_artifacts_round_trip_without_pickle(ws):
     saved again replaces its value; unknown names give the default."""
     from dataclasses import dataclass
 
-    from slicefind.items import Item
-    from slicefind.records import Slice
+    from slicefind.discovery.items import Item
+    from slicefind.discovery.records import Slice
 
     frame = pd.DataFrame({"label": [3, 8], "prediction": [8, 3], "n_errors": [12, 5]},
                          index=pd.Index(["a", "b"], name="pair"))

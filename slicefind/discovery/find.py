@@ -13,19 +13,21 @@ from typing import Any, Mapping, Sequence
 import numpy as np
 import pandas as pd
 
-from slicefind import bitset
-from slicefind.clusters import cluster_slices
-from slicefind.describe import confusions
-from slicefind.distributed import is_dask_frame, mine_dask
+from slicefind.discovery import bitset
+from slicefind.discovery.clusters import cluster_slices
+from slicefind.discovery.describe import confusions
+from slicefind.discovery.distributed import is_dask_frame, mine_dask
 from slicefind.exceptions import SlicefindTypeError, SlicefindValueError
-from slicefind.items import ItemSet, build_items
-from slicefind.labelcheck import label_check_slices, nested_tests, params_summary, score_columns
-from slicefind.records import Slice, default_min_rows, jaccard
-from slicefind.rules import (ENGINES, RuleCounts, fold_into_refinements, refinement_pvalues,
-                             rule_bits, search_rules)
+from slicefind.discovery.items import ItemSet, build_items
+from slicefind.discovery.labelcheck import (label_check_slices, nested_tests, params_summary,
+                                            score_columns)
+from slicefind.discovery.records import Slice, default_min_rows, jaccard
+from slicefind.discovery.rules import (ENGINES, RuleCounts, fold_into_refinements,
+                                       refinement_pvalues, rule_bits, search_rules)
 from slicefind.stats import SCORE_COLUMNS, bh_qvalues, fisher_greater, score_slices
-from slicefind.table import EvalTable, build_eval_table
-from slicefind.text import TermCounts, check_texts, embed_column, text_features as surface_features
+from slicefind.discovery.table import EvalTable, build_eval_table
+from slicefind.discovery.text import (TermCounts, check_texts, embed_column,
+                                      text_features as surface_features)
 
 __all__ = ["FoundSlices", "find_slices", "TABLE_COLUMNS"]
 
@@ -277,7 +279,7 @@ def find_slices(
     clusters : {"both", "regions", "error_modes", "none"}, default="both"
         Which embedding clusters to propose when ``embeddings`` is given.
     cluster_options : mapping, optional
-        Extra keyword arguments for `slicefind.clusters.cluster_slices`.
+        Extra keyword arguments for `slicefind.discovery.clusters.cluster_slices`.
     merge_jaccard : float, default=0.8
         Slices whose rows overlap at least this much (Jaccard) are one entry; the
         others are listed as its aliases, and a rule is preferred as the main entry.
@@ -294,9 +296,9 @@ def find_slices(
         per-class slices compete with the rest. The prediction is never mined.
     client : distributed.Client, optional
         With a Dask DataFrame as ``data``: the cluster to count on (default the current
-        client, or a local cluster of 2 worker processes). See `slicefind.distributed`.
+        client, or a local cluster of 2 worker processes). See `slicefind.discovery.distributed`.
     scores : str, sequence of str, mapping or array-like, optional
-        The model's probabilities, for the label check (`slicefind.labelcheck`): a column
+        The model's probabilities, for the label check (`slicefind.discovery.labelcheck`): a column
         holding the probability of the predicted class; one column per class (a sequence
         in the sorted order of the class values, or a mapping class -> column); or an
         ``(n,)`` / ``(n, k)`` array of the same. Needs label and prediction, every row
@@ -311,8 +313,8 @@ def find_slices(
     text : str, optional
         A column of free text (messages, documents, generated answers); needs a pandas
         DataFrame. Without ``embeddings``, the clusters are fitted on vectors computed
-        from it (`slicefind.text.embed_texts`; ``found.extras["text"]`` says how). With
-        ``text_features``, its surface features (`slicefind.text.text_features`:
+        from it (`slicefind.discovery.text.embed_texts`; ``found.extras["text"]`` says how). With
+        ``text_features``, its surface features (`slicefind.discovery.text.text_features`:
         ``"<text>.tokens"``, ``"<text>.has_url"``, ...) are mined like any other column.
         The column itself is not mined, and `describe_slice` lists its distinctive terms.
     text_model : None, str or callable, optional

@@ -12,10 +12,10 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
-from slicefind import bitset
+from slicefind.discovery import bitset
 from slicefind.exceptions import SlicefindTypeError, SlicefindValueError, did_you_mean
-from slicefind.table import EvalTable
-from slicefind.text import TOKEN_PATTERN, class_tfidf
+from slicefind.discovery.table import EvalTable
+from slicefind.discovery.text import TOKEN_PATTERN, class_tfidf
 from slicefind.values import value_text
 
 __all__ = [
@@ -404,7 +404,7 @@ def describe_slice(found, slice_id: str, *, text_column: str | None = None, n_ex
 
     Examples
     --------
-    >>> from slicefind.slices import find_slices
+    >>> from slicefind.discovery.find import find_slices
     >>> rng = np.random.default_rng(0)
     >>> frame = pd.DataFrame({"scanner": rng.choice(["S1", "S2", "S3"], 3000),
     ...                       "shift": rng.choice(["day", "night"], 3000)})

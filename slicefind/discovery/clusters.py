@@ -19,7 +19,7 @@ Exact duplicate embedding rows are collapsed first and every result is mapped ba
 each copy. Above ``sample_above`` distinct rows (default 20,000) the reduction and
 clustering are fitted on a sample (every error up to a cap, plus random correct rows) and
 the other rows are placed by a majority vote of their nearest fitted rows in the PCA space
-(found with faiss's inverted-file index, `slicefind.neighbours`).
+(found with faiss's inverted-file index, `slicefind.discovery.neighbours`).
 """
 from __future__ import annotations
 
@@ -33,15 +33,16 @@ from typing import Any, Mapping
 
 import numpy as np
 
-from slicefind.bitset import cache_dir
-from slicefind.describe import describe_rows
+from slicefind.compiled import cache_dir
+from slicefind.discovery.describe import describe_rows
 from slicefind.exceptions import SlicefindTypeError, SlicefindValueError
-from slicefind.hierarchy import ROOT, Tree, condensed_tree, single_node, subtree_rows, tree_vote
-from slicefind.items import build_items
-from slicefind.neighbours import NeighbourIndex, PLACINGS
-from slicefind.placing import HASH_BLOCK, Placed, row_hashes
-from slicefind.records import Slice, default_min_rows
-from slicefind.table import EvalTable
+from slicefind.discovery.hierarchy import (ROOT, Tree, condensed_tree, single_node, subtree_rows,
+                                           tree_vote)
+from slicefind.discovery.items import build_items
+from slicefind.discovery.neighbours import NeighbourIndex, PLACINGS
+from slicefind.discovery.placing import HASH_BLOCK, Placed, row_hashes
+from slicefind.discovery.records import Slice, default_min_rows
+from slicefind.discovery.table import EvalTable
 
 __all__ = [
     "ClusterResult",
@@ -106,9 +107,9 @@ class ClusterResult:
         The options used.
     nodes : dict
         Strategy -> the deepest node of its hierarchy holding each analysed row
-        (`slicefind.hierarchy.ROOT`, 0, when no cluster holds it).
+        (`slicefind.discovery.hierarchy.ROOT`, 0, when no cluster holds it).
     trees : dict
-        Strategy -> its hierarchy (`slicefind.hierarchy.Tree`).
+        Strategy -> its hierarchy (`slicefind.discovery.hierarchy.Tree`).
     """
 
     slices: tuple[Slice, ...]
@@ -442,7 +443,7 @@ def _assign(z: np.ndarray, fit: np.ndarray, rest: np.ndarray, label_sets: list[t
 
 
 def _neighbours(points: np.ndarray, n_neighbors: int, placing: str = "approximate"):
-    """A nearest-neighbour index over `points` (`slicefind.neighbours.NeighbourIndex`)."""
+    """A nearest-neighbour index over `points` (`slicefind.discovery.neighbours.NeighbourIndex`)."""
     return NeighbourIndex(points, n_neighbors, placing=placing)
 
 
@@ -466,7 +467,7 @@ class Fitted:
 
     ``mean, axes`` are the PCA, ``zf`` the fitted rows' PCA coordinates, ``vectors``
     their embeddings; ``labels`` maps "region"/"error_mode" to the fitted rows' deepest
-    tree nodes and ``trees`` to the hierarchies (`slicefind.hierarchy`), ``coords`` and
+    tree nodes and ``trees`` to the hierarchies (`slicefind.discovery.hierarchy`), ``coords`` and
     ``map_xy`` are their layout and map coordinates."""
 
     mean: np.ndarray
@@ -632,7 +633,7 @@ def cluster_slices(
         The layout's start: the leading principal coordinates, or UMAP's spectral embedding.
     placing : {"approximate", "exact"}, default="approximate"
         How the rows outside the fit find their nearest fitted rows: faiss's inverted
-        file (`slicefind.neighbours`, about 8% of the fitted rows read per row) or an
+        file (`slicefind.discovery.neighbours`, about 8% of the fitted rows read per row) or an
         exact search. Both are reproducible.
     hierarchy : bool, default=True
         Propose every node of the cluster trees; False proposes only the clusters of
@@ -643,7 +644,7 @@ def cluster_slices(
         Show progress bars; default only for tables of 20,000 rows or more.
     source : optional
         Where the embedding rows live: None for ``table.embeddings`` (`MemoryRows`); the
-        Dask engine passes its partitions (`slicefind.distributed`).
+        Dask engine passes its partitions (`slicefind.discovery.distributed`).
 
     Returns
     -------
@@ -660,7 +661,7 @@ def cluster_slices(
     --------
     >>> import pandas as pd
     >>> from sklearn.datasets import make_blobs
-    >>> from slicefind.table import build_eval_table
+    >>> from slicefind.discovery.table import build_eval_table
     >>> x, blob = make_blobs(n_samples=[200, 200, 200], n_features=8, random_state=0)
     >>> wrong = np.random.default_rng(0).random(600) < np.where(blob == 2, 0.5, 0.05)
     >>> table = build_eval_table(pd.DataFrame({"site": ["a", "b"] * 300}), errors=wrong, embeddings=x)
@@ -749,7 +750,7 @@ def cluster_slices(
                f"{fragments:.0%} of the distinct rows fitted; clusters cannot span them and the map "
                "places them arbitrarily. Near-copies of a few originals often cause this; a larger "
                "cluster_options={'n_neighbors': ...} joins more of them. Silence with "
-               "warnings.filterwarnings('ignore', category=slicefind.clusters.DisconnectedGraphWarning).")
+               "warnings.filterwarnings('ignore', category=slicefind.discovery.clusters.DisconnectedGraphWarning).")
         warnings.warn(msg, DisconnectedGraphWarning, stacklevel=_stacklevel())
 
     coords_f = _umap_layout(zf, graph, cluster_dims, seed_layout if seeded else None, init=init,
@@ -845,7 +846,7 @@ class MemoryRows:
     vector, in row order, and whether any copy is an error), `vectors` (the embeddings of
     some rows), `place` (a `Placed` of every row once the fit is done) and
     `inside` (per-cluster item counts, or None to count on the items' bitsets). The Dask
-    engine's source (`slicefind.distributed`) answers them partition by partition."""
+    engine's source (`slicefind.discovery.distributed`) answers them partition by partition."""
 
     def __init__(self, x: np.ndarray):
         self.x = x

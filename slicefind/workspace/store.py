@@ -10,10 +10,8 @@ written at once and a killed process loses nothing already committed.
 """
 from __future__ import annotations
 
-import dataclasses
 import datetime as _dt
 import hashlib
-import importlib
 import io
 import json
 import os
@@ -22,135 +20,32 @@ import sqlite3
 import threading
 import time
 import warnings
-from typing import Any, Callable, Iterable, Mapping, Sequence
+from typing import Iterable, Mapping, Sequence
 
 import numpy as np
 import pandas as pd
 
 from slicefind.exceptions import (SlicefindTypeError, SlicefindValueError, WorkspaceBusyError,
                                   did_you_mean)
-from slicefind.queue import Queue, REST, assemble_queue
-from slicefind.slices import FoundSlices
-from slicefind.table import EvalTable
-from slicefind.tally import Tally, UNTAGGED, normalize_tag, read_reviews, tally
-from slicefind.values import json_scalar
+from slicefind.review.queue import Queue, REST, assemble_queue
+from slicefind.discovery.find import FoundSlices
+from slicefind.discovery.table import EvalTable
+from slicefind.review.tally import Tally, UNTAGGED, normalize_tag, read_reviews, tally
 
-__all__ = ["Workspace", "data_fingerprint", "DB_NAME", "SCHEMA_VERSION", "MIGRATIONS"]
+from slicefind.workspace.blobs import (blob_rows, decode_tree, encode_tree, json_default, pack,
+                                       pack_frame, rows_blob, unpack, unpack_frame)
+from slicefind.workspace.schema import (BUSY_RETRIES, BUSY_TIMEOUT, DB_NAME, MIGRATIONS, SCHEMA,
+                                        SCHEMA_VERSION, statements)
 
-#: the database file inside a workspace folder
-DB_NAME = "slicefind.sqlite"
-#: seconds a write waits for another process's lock (SQLite's busy timeout), per attempt
-BUSY_TIMEOUT = 30.0
-#: pauses between further attempts when the busy timeout ran out; then WorkspaceBusyError
-BUSY_RETRIES = (0.5, 1.0, 2.0)
-#: the schema this code writes; older files are migrated by MIGRATIONS, newer ones refused
-SCHEMA_VERSION = 1
-#: from-version -> function(connection) upgrading a schema by one version, inside a transaction
-MIGRATIONS: dict[int, Callable[[sqlite3.Connection], None]] = {}
-
-_SCHEMA = """
-CREATE TABLE meta (key TEXT PRIMARY KEY, value TEXT NOT NULL);
-CREATE TABLE scans (
-    scan_id INTEGER PRIMARY KEY AUTOINCREMENT,
-    created_at TEXT NOT NULL,
-    library_version TEXT NOT NULL,
-    fingerprint TEXT NOT NULL,
-    params TEXT NOT NULL,
-    n_input_rows INTEGER NOT NULL,
-    n_rows INTEGER NOT NULL,
-    n_errors INTEGER NOT NULL,
-    id_column TEXT,
-    error_definition TEXT NOT NULL,
-    show TEXT NOT NULL,
-    skipped TEXT NOT NULL,
-    slice_table BLOB NOT NULL,
-    tested_table BLOB NOT NULL
-);
-CREATE TABLE scan_arrays (
-    scan_id INTEGER NOT NULL REFERENCES scans(scan_id),
-    name TEXT NOT NULL,
-    data BLOB NOT NULL,
-    PRIMARY KEY (scan_id, name)
-);
-CREATE TABLE slice_rows (
-    scan_id INTEGER NOT NULL REFERENCES scans(scan_id),
-    slice_id TEXT NOT NULL,
-    rows BLOB NOT NULL,
-    PRIMARY KEY (scan_id, slice_id)
-);
-CREATE TABLE queues (
-    queue_id INTEGER PRIMARY KEY AUTOINCREMENT,
-    scan_id INTEGER NOT NULL REFERENCES scans(scan_id),
-    created_at TEXT NOT NULL,
-    params TEXT NOT NULL,
-    batches TEXT NOT NULL,
-    n_rows INTEGER NOT NULL,
-    n_errors INTEGER NOT NULL,
-    strata BLOB NOT NULL,
-    rowdata BLOB NOT NULL,
-    queue_table BLOB NOT NULL
-);
-CREATE TABLE queue_order (
-    queue_id INTEGER NOT NULL REFERENCES queues(queue_id),
-    stratum TEXT NOT NULL,
-    rows BLOB NOT NULL,
-    PRIMARY KEY (queue_id, stratum)
-);
-CREATE TABLE reviews (
-    event_id INTEGER PRIMARY KEY AUTOINCREMENT,
-    scan_id INTEGER NOT NULL REFERENCES scans(scan_id),
-    row INTEGER NOT NULL,
-    reviewed INTEGER NOT NULL CHECK (reviewed IN (0, 1)),
-    tags TEXT NOT NULL,
-    note TEXT NOT NULL,
-    source TEXT NOT NULL,
-    created_at TEXT NOT NULL
-);
-CREATE INDEX reviews_by_row ON reviews (scan_id, row, event_id);
-CREATE TABLE names (
-    event_id INTEGER PRIMARY KEY AUTOINCREMENT,
-    scan_id INTEGER NOT NULL REFERENCES scans(scan_id),
-    slice_id TEXT NOT NULL,
-    name TEXT NOT NULL,
-    source TEXT NOT NULL,
-    created_at TEXT NOT NULL
-);
-CREATE INDEX names_by_slice ON names (scan_id, slice_id, event_id);
-CREATE TABLE artifacts (
-    scan_id INTEGER NOT NULL REFERENCES scans(scan_id),
-    name TEXT NOT NULL,
-    created_at TEXT NOT NULL,
-    data BLOB NOT NULL,
-    PRIMARY KEY (scan_id, name)
-);
-CREATE TRIGGER reviews_no_update BEFORE UPDATE ON reviews
-    BEGIN SELECT RAISE(ABORT, 'reviews are append-only'); END;
-CREATE TRIGGER reviews_no_delete BEFORE DELETE ON reviews
-    BEGIN SELECT RAISE(ABORT, 'reviews are append-only'); END;
-CREATE TRIGGER names_no_update BEFORE UPDATE ON names
-    BEGIN SELECT RAISE(ABORT, 'names are append-only'); END;
-CREATE TRIGGER names_no_delete BEFORE DELETE ON names
-    BEGIN SELECT RAISE(ABORT, 'names are append-only'); END;
-"""
+__all__ = ["Workspace", "data_fingerprint"]
 
 
-def _statements(script: str) -> list[str]:
-    """Split a SQL script into complete statements (triggers keep their inner ';')."""
-    out, current = [], ""
-    for line in script.splitlines(keepends=True):
-        current += line
-        if sqlite3.complete_statement(current):
-            out.append(current.strip())
-            current = ""
-    return [s for s in out if s]
-
-
-def _now() -> str:
+def now() -> str:
     """UTC time as ISO 8601 with microseconds."""
     return _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="microseconds")
 
 
-def _library_version() -> str:
+def library_version() -> str:
     from slicefind import __version__
     return __version__
 
@@ -177,170 +72,7 @@ def data_fingerprint(frame: pd.DataFrame) -> str:
     return "sha256:" + digest.hexdigest()
 
 
-_fingerprint = data_fingerprint
-
-
-# --- storing arrays and frames without pickle ---------------------------------------------
-
-
-def _json_default(value):
-    """JSON for numpy scalars and arrays; text for anything else."""
-    if isinstance(value, np.generic):
-        return value.item()
-    if isinstance(value, np.ndarray):
-        return value.tolist()
-    return str(value)
-
-
-def _pack(arrays: Mapping[str, np.ndarray], meta: Mapping[str, Any]) -> bytes:
-    """Arrays (numeric as .npy, anything else as JSON text) and a JSON header in one npz blob."""
-    stored, kinds = {}, {}
-    for name, values in arrays.items():
-        values = np.asarray(values) if not isinstance(values, np.ndarray) else values
-        if values.dtype.kind in "biufcmM":
-            stored[name] = values
-            kinds[name] = "npy"
-        else:
-            text = json.dumps([json_scalar(v, keep_infinite=True) for v in values.tolist()])
-            stored[name] = np.frombuffer(text.encode("utf-8"), dtype=np.uint8)
-            kinds[name] = "json"
-    header = json.dumps({"meta": meta, "kinds": kinds}).encode("utf-8")
-    stored["__header__"] = np.frombuffer(header, dtype=np.uint8)
-    buffer = io.BytesIO()
-    np.savez_compressed(buffer, **stored)
-    return buffer.getvalue()
-
-
-def _unpack(blob: bytes) -> tuple[dict[str, np.ndarray], dict[str, Any]]:
-    """Inverse of `_pack`: (arrays, meta); JSON arrays come back as object arrays."""
-    with np.load(io.BytesIO(blob), allow_pickle=False) as npz:
-        header = json.loads(npz["__header__"].tobytes().decode("utf-8"))
-        arrays = {}
-        for name, kind in header["kinds"].items():
-            if kind == "npy":
-                arrays[name] = npz[name]
-            else:
-                values = json.loads(npz[name].tobytes().decode("utf-8"))
-                out = np.empty(len(values), dtype=object)
-                out[:] = values
-                arrays[name] = out
-    return arrays, header["meta"]
-
-
-def _pack_frame(frame: pd.DataFrame) -> bytes:
-    """A DataFrame (columns, dtypes and values; not the index) as a blob."""
-    arrays = {f"c{i}": frame.iloc[:, i].to_numpy() for i in range(frame.shape[1])}
-    meta = {"columns": [str(c) for c in frame.columns], "dtypes": [str(t) for t in frame.dtypes]}
-    return _pack(arrays, meta)
-
-
-def _unpack_frame(blob: bytes) -> pd.DataFrame:
-    """Inverse of `_pack_frame`, restoring each column's dtype where pandas can."""
-    arrays, meta = _unpack(blob)
-    data = {}
-    for i, (name, dtype) in enumerate(zip(meta["columns"], meta["dtypes"])):
-        values = arrays[f"c{i}"]
-        series = pd.Series(values)
-        if values.dtype == object:
-            try:
-                series = series.astype(dtype)
-            except (TypeError, ValueError):
-                pass
-        data[name] = series
-    return pd.DataFrame(data, columns=meta["columns"])
-
-
-def _encode_tree(value, arrays: dict):
-    """A JSON tree for `value`; arrays and frames go to `arrays` (no pickle anywhere).
-
-    Handles None, bool, int, float, str, numpy scalars and arrays, DataFrames, Series,
-    lists, tuples, dicts and dataclasses defined in slicefind itself.
-    """
-    if value is None or isinstance(value, (bool, str)):
-        return value
-    if isinstance(value, (int, float)):
-        return value
-    if isinstance(value, np.generic):
-        return value.item()
-    if isinstance(value, np.ndarray):
-        if value.dtype.kind in "biufcmM":
-            key = f"a{len(arrays)}"
-            arrays[key] = value
-            return {"__array__": key}
-        return {"__objects__": [_encode_tree(v, arrays) for v in value.tolist()]}
-    if isinstance(value, pd.Series):
-        return {"__series__": _encode_tree(value.to_frame(name="values"), arrays),
-                "name": _encode_tree(value.name, arrays)}
-    if isinstance(value, pd.DataFrame):
-        key = f"a{len(arrays)}"
-        arrays[key] = np.frombuffer(_pack_frame(value), dtype=np.uint8)
-        return {"__frame__": key, "index": _encode_tree(value.index.to_numpy(), arrays),
-                "index_name": _encode_tree(value.index.name, arrays)}
-    if isinstance(value, tuple):
-        return {"__tuple__": [_encode_tree(v, arrays) for v in value]}
-    if isinstance(value, list):
-        return [_encode_tree(v, arrays) for v in value]
-    if isinstance(value, Mapping):
-        return {"__dict__": [[_encode_tree(k, arrays), _encode_tree(v, arrays)] for k, v in value.items()]}
-    if dataclasses.is_dataclass(value) and not isinstance(value, type):
-        cls = type(value)
-        if not cls.__module__.startswith("slicefind."):
-            raise SlicefindTypeError(f"artifacts hold slicefind's own dataclasses only; got {cls.__qualname__}.")
-        fields = {f.name: _encode_tree(getattr(value, f.name), arrays)
-                  for f in dataclasses.fields(value) if f.init}
-        return {"__dataclass__": f"{cls.__module__}:{cls.__qualname__}", "fields": fields}
-    msg = (f"an artifact cannot hold a {type(value).__name__}; use numbers, strings, lists, dicts, "
-           "numpy arrays or DataFrames.")
-    raise SlicefindTypeError(msg)
-
-
-def _decode_tree(tree, arrays: Mapping[str, np.ndarray]):
-    """Inverse of `_encode_tree`."""
-    if isinstance(tree, list):
-        return [_decode_tree(v, arrays) for v in tree]
-    if not isinstance(tree, dict):
-        return tree
-    if "__array__" in tree:
-        return arrays[tree["__array__"]]
-    if "__objects__" in tree:
-        out = np.empty(len(tree["__objects__"]), dtype=object)
-        out[:] = [_decode_tree(v, arrays) for v in tree["__objects__"]]
-        return out
-    if "__series__" in tree:
-        series = _decode_tree(tree["__series__"], arrays)["values"]
-        series.name = _decode_tree(tree["name"], arrays)
-        return series
-    if "__frame__" in tree:
-        frame = _unpack_frame(arrays[tree["__frame__"]].tobytes())
-        frame.index = pd.Index(_decode_tree(tree["index"], arrays), name=_decode_tree(tree["index_name"], arrays))
-        return frame
-    if "__tuple__" in tree:
-        return tuple(_decode_tree(v, arrays) for v in tree["__tuple__"])
-    if "__dict__" in tree:
-        return {_hashable(_decode_tree(k, arrays)): _decode_tree(v, arrays) for k, v in tree["__dict__"]}
-    if "__dataclass__" in tree:
-        module, _, name = tree["__dataclass__"].partition(":")
-        if not module.startswith("slicefind."):
-            raise SlicefindValueError(f"artifact names a class outside slicefind ({module}); refused.")
-        cls = importlib.import_module(module)
-        for part in name.split("."):
-            cls = getattr(cls, part)
-        return cls(**{k: _decode_tree(v, arrays) for k, v in tree["fields"].items()})
-    return tree
-
-
-def _hashable(key):
-    """Dict keys come back as stored; lists (from tuples' JSON) become tuples."""
-    return tuple(key) if isinstance(key, list) else key
-
-
-def _rows_blob(rows: np.ndarray) -> bytes:
-    """A sorted int64 row array as raw bytes."""
-    return np.asarray(rows, dtype="<i8").tobytes()
-
-
-def _blob_rows(blob: bytes) -> np.ndarray:
-    return np.frombuffer(blob, dtype="<i8").astype(np.intp)
+_fingerprint = data_fingerprint     # save_scan's argument of the same name hides the function
 
 
 # --- the workspace ------------------------------------------------------------------------
@@ -362,7 +94,7 @@ class Workspace:
     timeout : float, optional
         Seconds a write waits for another process's lock, per attempt (default
         `BUSY_TIMEOUT`, 30); after ``len(BUSY_RETRIES) + 1`` attempts it raises
-        `slicefind.table.WorkspaceBusyError` and writes nothing.
+        `slicefind.discovery.table.WorkspaceBusyError` and writes nothing.
     create : bool, default=True
         Create the folder and database when missing; with False a missing workspace is
         an error (for commands that need an existing one).
@@ -371,7 +103,7 @@ class Workspace:
     --------
     >>> import tempfile
     >>> from slicefind.demodata import example_scan
-    >>> from slicefind.queue import build_queue
+    >>> from slicefind.review.queue import build_queue
     >>> ws = Workspace(tempfile.mkdtemp())
     >>> scan_id = ws.save_scan(example_scan())
     >>> queue = build_queue(ws.load_found(), budget=20, rest=5)
@@ -427,12 +159,12 @@ class Workspace:
             conn.execute("PRAGMA journal_mode = WAL")
             conn.execute("PRAGMA synchronous = FULL")
             with self._transaction():
-                for statement in _statements(_SCHEMA):
+                for statement in statements(SCHEMA):
                     conn.execute(statement)
                 conn.executemany("INSERT INTO meta (key, value) VALUES (?, ?)",
                                  [("schema_version", str(SCHEMA_VERSION)),
-                                  ("created_at", _now()),
-                                  ("created_by", f"slicefind {_library_version()}")])
+                                  ("created_at", now()),
+                                  ("created_by", f"slicefind {library_version()}")])
             return
         if "meta" not in tables:
             msg = (f"{self.db_path!r} is a SQLite database but not a slicefind workspace (it has "
@@ -448,7 +180,7 @@ class Workspace:
         if version > SCHEMA_VERSION:
             msg = (f"{self.db_path!r} was written by a newer slicefind "
                    f"({created_by[0] if created_by else 'unknown'}, schema version {version}); this "
-                   f"slicefind {_library_version()} reads schema version {SCHEMA_VERSION} and older. "
+                   f"slicefind {library_version()} reads schema version {SCHEMA_VERSION} and older. "
                    "Upgrade slicefind (pip install -U slicefind) to open it.")
             raise SlicefindValueError(msg)
         conn.execute("PRAGMA journal_mode = WAL")
@@ -462,7 +194,7 @@ class Workspace:
         missing = [v for v in steps if v not in MIGRATIONS]
         if missing:
             msg = (f"{self.db_path!r} uses schema version {version}, which this slicefind "
-                   f"{_library_version()} (schema {SCHEMA_VERSION}) cannot migrate (no step from "
+                   f"{library_version()} (schema {SCHEMA_VERSION}) cannot migrate (no step from "
                    f"version {missing[0]}). Open it with the slicefind that wrote it and export the "
                    "reviews, or start a new workspace.")
             raise SlicefindValueError(msg)
@@ -475,7 +207,7 @@ class Workspace:
             self._conn.execute("UPDATE meta SET value = ? WHERE key = 'schema_version'",
                                (str(SCHEMA_VERSION),))
             self._conn.execute("INSERT OR REPLACE INTO meta (key, value) VALUES (?, ?)",
-                               (f"migrated_from_{version}", _now()))
+                               (f"migrated_from_{version}", now()))
 
     def _begin(self) -> None:
         """BEGIN IMMEDIATE, waiting out another process's lock; WorkspaceBusyError after the retries.
@@ -583,23 +315,23 @@ class Workspace:
         if table.prediction is not None:
             arrays["prediction"] = np.asarray(table.prediction)
         columns = ([table.id_column] if table.id_column else []) + [c for c in show if c != table.id_column]
-        params = json.loads(json.dumps(dict(found.params), default=_json_default))
+        params = json.loads(json.dumps(dict(found.params), default=json_default))
         with self._transaction() as conn:
             cursor = conn.execute(
                 "INSERT INTO scans (created_at, library_version, fingerprint, params, n_input_rows, "
                 "n_rows, n_errors, id_column, error_definition, show, skipped, slice_table, "
                 "tested_table) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
-                (_now(), _library_version(), fingerprint, json.dumps(params), int(table.n_input_rows),
+                (now(), library_version(), fingerprint, json.dumps(params), int(table.n_input_rows),
                  table.n_rows, table.n_errors, table.id_column, table.error_definition,
                  json.dumps(list(show)), json.dumps(dict(table.skipped)),
-                 _pack_frame(found.table), _pack_frame(found.tested)))
+                 pack_frame(found.table), pack_frame(found.tested)))
             scan_id = int(cursor.lastrowid)
             conn.execute("INSERT INTO scan_arrays (scan_id, name, data) VALUES (?, ?, ?)",
-                         (scan_id, "arrays", _pack(arrays, {})))
+                         (scan_id, "arrays", pack(arrays, {})))
             conn.execute("INSERT INTO scan_arrays (scan_id, name, data) VALUES (?, ?, ?)",
-                         (scan_id, "columns", _pack_frame(table.data[columns].reset_index(drop=True))))
+                         (scan_id, "columns", pack_frame(table.data[columns].reset_index(drop=True))))
             conn.executemany("INSERT INTO slice_rows (scan_id, slice_id, rows) VALUES (?, ?, ?)",
-                             [(scan_id, sid, _rows_blob(found.rows(sid))) for sid in found.table["slice_id"]])
+                             [(scan_id, sid, rows_blob(found.rows(sid))) for sid in found.table["slice_id"]])
         return scan_id
 
     def _scan_id(self, scan_id: int | None) -> int:
@@ -643,9 +375,9 @@ class Workspace:
             slice_rows = dict(self._conn.execute(
                 "SELECT slice_id, rows FROM slice_rows WHERE scan_id = ?", (scan_id,)).fetchall())
         params, n_input, id_column, definition, skipped, table_blob, tested_blob, fp, version, created = scan
-        arrays, _ = _unpack(blobs["arrays"])
+        arrays, _ = unpack(blobs["arrays"])
         positions = arrays["positions"].astype(np.intp)
-        columns = _unpack_frame(blobs["columns"])
+        columns = unpack_frame(blobs["columns"])
         columns.index = pd.Index(positions)
         params = json.loads(params)
         names = {role: params[f"{role}_column"] for role in ("label", "prediction")
@@ -655,9 +387,9 @@ class Workspace:
                                label=arrays.get("label"), prediction=arrays.get("prediction"),
                                embeddings=None, id_column=id_column, error_definition=definition,
                                columns_used=names)
-        table = _unpack_frame(table_blob)
-        rows = {sid: _blob_rows(slice_rows[sid]) for sid in table["slice_id"]}
-        return FoundSlices(table=table, tested=_unpack_frame(tested_blob), eval_table=eval_table,
+        table = unpack_frame(table_blob)
+        rows = {sid: blob_rows(slice_rows[sid]) for sid in table["slice_id"]}
+        return FoundSlices(table=table, tested=unpack_frame(tested_blob), eval_table=eval_table,
                            params=params, _rows=rows,
                            extras={"scan_id": scan_id, "fingerprint": fp, "library_version": version,
                                    "created_at": created})
@@ -680,13 +412,13 @@ class Workspace:
         if not isinstance(name, str) or not name:
             raise SlicefindValueError(f"artifact name must be a non-empty string; got {name!r}.")
         arrays: dict[str, np.ndarray] = {}
-        tree = _encode_tree(value, arrays)
+        tree = encode_tree(value, arrays)
         arrays["__tree__"] = np.frombuffer(json.dumps(tree).encode("utf-8"), dtype=np.uint8)
         buffer = io.BytesIO()
         np.savez_compressed(buffer, **arrays)
         with self._transaction() as conn:
             conn.execute("INSERT OR REPLACE INTO artifacts (scan_id, name, created_at, data) "
-                         "VALUES (?, ?, ?, ?)", (scan_id, name, _now(), buffer.getvalue()))
+                         "VALUES (?, ?, ?, ?)", (scan_id, name, now(), buffer.getvalue()))
 
     def load_artifact(self, name: str, *, default=None, scan_id: int | None = None):
         """An artifact saved with `save_artifact`, or `default` when there is none."""
@@ -699,7 +431,7 @@ class Workspace:
         with np.load(io.BytesIO(row[0]), allow_pickle=False) as npz:
             arrays = {key: npz[key] for key in npz.files}
         tree = json.loads(arrays.pop("__tree__").tobytes().decode("utf-8"))
-        return _decode_tree(tree, arrays)
+        return decode_tree(tree, arrays)
 
     # -- queues ----------------------------------------------------------------------------
 
@@ -722,7 +454,7 @@ class Workspace:
                    f"errors, but scan {scan_id} has {n_rows} and {n_errors}; draw it from "
                    "Workspace.load_found().")
             raise SlicefindValueError(msg)
-        arrays, _ = _unpack(blob)
+        arrays, _ = unpack(blob)
         error_rows = arrays["positions"][arrays["errors"].astype(bool)]
         rows = queue.table["row"].to_numpy(dtype=np.int64)
         outside = np.setdiff1d(rows, error_rows)
@@ -749,13 +481,13 @@ class Workspace:
             cursor = conn.execute(
                 "INSERT INTO queues (scan_id, created_at, params, batches, n_rows, n_errors, strata, "
                 "rowdata, queue_table) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?)",
-                (scan_id, _now(), json.dumps(dict(queue.params), default=_json_default),
+                (scan_id, now(), json.dumps(dict(queue.params), default=json_default),
                  json.dumps([{str(k): int(v) for k, v in b.items()} for b in queue._batches]),
-                 queue.n_rows, queue.n_errors, _pack_frame(strata), _pack_frame(rowdata),
-                 _pack_frame(queue.table)))
+                 queue.n_rows, queue.n_errors, pack_frame(strata), pack_frame(rowdata),
+                 pack_frame(queue.table)))
             queue_id = int(cursor.lastrowid)
             conn.executemany("INSERT INTO queue_order (queue_id, stratum, rows) VALUES (?, ?, ?)",
-                             [(queue_id, s, _rows_blob(queue.order(s))) for s in strata["stratum"]])
+                             [(queue_id, s, rows_blob(queue.order(s))) for s in strata["stratum"]])
         self._queue_cache = None
         return queue_id
 
@@ -794,13 +526,13 @@ class Workspace:
                 "WHERE queue_id = ?", (queue_id,)).fetchone()
             order = dict(self._conn.execute("SELECT stratum, rows FROM queue_order WHERE queue_id = ?",
                                             (queue_id,)).fetchall())
-        strata = _unpack_frame(strata)
-        rowdata = _unpack_frame(rowdata).set_index("row")
+        strata = unpack_frame(strata)
+        rowdata = unpack_frame(rowdata).set_index("row")
         rowdata.index = rowdata.index.astype(np.int64)
-        order = {s: _blob_rows(order[s]).astype(np.int64) for s in strata["stratum"]}
+        order = {s: blob_rows(order[s]).astype(np.int64) for s in strata["stratum"]}
         queue = assemble_queue(strata, order, rowdata, tuple(json.loads(batches)), json.loads(params),
                           int(n_rows), int(n_errors))
-        stored = _unpack_frame(stored)
+        stored = unpack_frame(stored)
         same = all(np.array_equal(queue.table[c].to_numpy(), stored[c].to_numpy())
                    for c in ("position", "stratum", "row"))
         if not same:
@@ -855,7 +587,7 @@ class Workspace:
                 return None
             cursor = conn.execute(
                 "INSERT INTO reviews (scan_id, row, reviewed, tags, note, source, created_at) "
-                "VALUES (?, ?, ?, ?, ?, ?, ?)", (scan_id, int(row), *state, source, _now()))
+                "VALUES (?, ?, ?, ?, ?, ?, ?)", (scan_id, int(row), *state, source, now()))
             return int(cursor.lastrowid)
 
     @staticmethod
@@ -913,7 +645,7 @@ class Workspace:
         reviews, changes, blank, unchanged = self._plan_import(sheet, scan_id, trust_order)
         pending = [(scan_id, row, *state, source) for row, state in changes]
         with self._transaction() as conn:
-            stamp = _now()
+            stamp = now()
             for start in range(0, len(pending), int(batch_size)):
                 conn.executemany(
                     "INSERT INTO reviews (scan_id, row, reviewed, tags, note, source, created_at) "
@@ -1001,7 +733,7 @@ class Workspace:
             if (old[0] if old else "") == name:
                 return None
             cursor = conn.execute("INSERT INTO names (scan_id, slice_id, name, source, created_at) "
-                                  "VALUES (?, ?, ?, ?, ?)", (scan_id, slice_id, name, source, _now()))
+                                  "VALUES (?, ?, ?, ?, ?)", (scan_id, slice_id, name, source, now()))
             return int(cursor.lastrowid)
 
     def check_name(self, slice_id: str, name: str, *, scan_id: int | None = None) -> str:

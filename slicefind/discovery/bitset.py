@@ -11,9 +11,9 @@ the same integers; tests check them against each other and against numpy counts.
 """
 from __future__ import annotations
 
-import os
-
 import numpy as np
+
+from slicefind.compiled import numba_kernels
 
 __all__ = [
     "WORD_BITS",
@@ -91,20 +91,6 @@ def _count_numpy(bits, prefixes, offsets, extensions):
             block = bits[ext[s:s + step]] & base
             counts[lo + s:lo + s + block.shape[0]] = np.bitwise_count(block).sum(axis=1, dtype=np.int64)
     return counts
-
-
-def numba_kernels():
-    """The compiled kernels module (compiled on first use, then loaded from numba's disk cache)."""
-    os.environ.setdefault("NUMBA_CACHE_DIR", cache_dir())
-    from slicefind import _kernels
-
-    return _kernels
-
-
-def cache_dir() -> str:
-    """Where numba caches compiled kernels: a per-user folder, so a read-only install still caches."""
-    base = os.environ.get("XDG_CACHE_HOME") or os.path.join(os.path.expanduser("~"), ".cache")
-    return os.path.join(base, "slicefind", "numba")
 
 
 def count_extensions(bits: np.ndarray, prefixes: np.ndarray, offsets: np.ndarray,

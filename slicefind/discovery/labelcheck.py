@@ -25,10 +25,10 @@ from typing import Any, Mapping, Sequence
 import numpy as np
 import pandas as pd
 
-from slicefind.describe import label_column
+from slicefind.discovery.describe import label_column
 from slicefind.exceptions import SlicefindTypeError, SlicefindValueError, did_you_mean
-from slicefind.records import LABEL_SOURCE, Slice, default_min_rows
-from slicefind.table import EvalTable
+from slicefind.discovery.records import LABEL_SOURCE, Slice, default_min_rows
+from slicefind.discovery.table import EvalTable
 from slicefind.values import value_text
 
 __all__ = ["UNION_KEY", "LabelCheck", "label_check_slices", "score_columns",
@@ -211,7 +211,7 @@ def label_check_slices(table: EvalTable, scores, *, min_rows: int | None = None)
 
     Examples
     --------
-    >>> from slicefind.table import build_eval_table
+    >>> from slicefind.discovery.table import build_eval_table
     >>> rng = np.random.default_rng(3)
     >>> digit = rng.integers(0, 3, 600)                     # digits read off parcel labels
     >>> scores = np.full((600, 3), 0.005)

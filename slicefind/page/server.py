@@ -4,7 +4,7 @@
 a `http.server.ThreadingHTTPServer` to the loopback interface on a free port. Every
 request must carry a random token as the first segment of its path
 (``http://127.0.0.1:PORT/TOKEN/``); anything else is refused before it is read. The page
-(HTML, CSS and JavaScript in ``slicefind/review_static``) talks to a small JSON API:
+(HTML, CSS and JavaScript in ``slicefind/page/static``) talks to a small JSON API:
 
 =======  ===================  ======================================================
 GET      ``api/state``        the queue, its strata, reviews, names, categories, tally
@@ -64,12 +64,12 @@ from typing import Any, Iterable, Mapping, Sequence
 import numpy as np
 import pandas as pd
 
-from slicefind.describe import exemplars, label_column, prediction_column
+from slicefind.discovery.describe import exemplars, label_column, prediction_column
 from slicefind.exceptions import (SlicefindError, SlicefindTypeError, SlicefindValueError,
                                   WorkspaceBusyError)
-from slicefind.queue import QUEUE_COLUMNS, REST
-from slicefind.tally import UNTAGGED, WRONG_LABEL, normalize_tag
-from slicefind.text import mark_terms
+from slicefind.review.queue import QUEUE_COLUMNS, REST
+from slicefind.review.tally import UNTAGGED, WRONG_LABEL, normalize_tag
+from slicefind.discovery.text import mark_terms
 from slicefind.values import json_scalar
 from slicefind.workspace import Workspace
 
@@ -226,7 +226,7 @@ def _ink_range(images: np.ndarray) -> tuple[float, float]:
 
 def _static(name: str) -> bytes:
     """The bytes of one file of the page, shipped inside the package."""
-    return (importlib.resources.files("slicefind") / "review_static" / name).read_bytes()
+    return (importlib.resources.files("slicefind.page") / "static" / name).read_bytes()
 
 
 def _nests_deeper(data: bytes, limit: int) -> bool:
@@ -385,7 +385,7 @@ class _ReviewApp:
         """What any row shows: id, label, prediction, text, and whether it has a thumbnail.
 
         With `terms`, ``text_parts`` cuts the text into ``[marked, piece]`` pairs
-        (`slicefind.text.mark_terms`) that the page inserts as text, never as HTML.
+        (`slicefind.discovery.text.mark_terms`) that the page inserts as text, never as HTML.
         """
         table = self.found.eval_table
         at = self._by_position.get(row)

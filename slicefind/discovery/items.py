@@ -16,9 +16,9 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from slicefind import bitset
+from slicefind.discovery import bitset
 from slicefind.stats import fisher_greater
-from slicefind.table import CATEGORICAL, DATETIME, EvalTable, NUMERIC
+from slicefind.discovery.table import CATEGORICAL, DATETIME, EvalTable, NUMERIC
 from slicefind.values import value_text
 
 __all__ = ["Item", "ItemSet", "build_items", "readable_cut", "WEEKDAYS"]

@@ -21,9 +21,9 @@ import numpy as np
 import pandas as pd
 
 from slicefind.exceptions import SlicefindTypeError, SlicefindValueError, did_you_mean
-from slicefind.records import LABEL_SOURCE
-from slicefind.slices import FoundSlices
-from slicefind.table import neutralize_formulas
+from slicefind.discovery.records import LABEL_SOURCE
+from slicefind.discovery.find import FoundSlices
+from slicefind.discovery.table import neutralize_formulas
 
 __all__ = ["Queue", "build_queue", "REST", "MIN_PER_STRATUM", "QUEUE_COLUMNS", "SHEET_COLUMNS",
            "ADAPTIVE_RULE"]
@@ -178,7 +178,7 @@ class Queue:
 
         Examples
         --------
-        >>> from slicefind.tally import tally
+        >>> from slicefind.review.tally import tally
         >>> from slicefind.demodata import example_scan
         >>> queue = build_queue(example_scan(), budget=30, rest=10)
         >>> longer = queue.extend(20)
@@ -233,7 +233,7 @@ class Queue:
         a byte-order mark, so spreadsheet programs read accents correctly, and is written
         to a temporary file first, then moved into place. A text cell that a spreadsheet
         would run as a formula (starting with ``= + - @``, tab or CR) is written with a
-        leading ``'`` (`slicefind.table.neutralize_formulas`); `read_reviews` reads it
+        leading ``'`` (`slicefind.discovery.table.neutralize_formulas`); `read_reviews` reads it
         back unchanged.
 
         Parameters

@@ -17,8 +17,8 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from slicefind import bitset
-from slicefind.items import ItemSet
+from slicefind.discovery import bitset
+from slicefind.discovery.items import ItemSet
 from slicefind.stats import fisher_greater
 
 __all__ = ["RuleCounts", "search_rules", "search_levels", "ENGINES", "refinement_pvalues", "fold_into_refinements",

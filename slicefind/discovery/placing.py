@@ -11,7 +11,7 @@ from typing import Mapping
 
 import numpy as np
 
-from slicefind.bitset import numba_kernels
+from slicefind.compiled import numba_kernels
 
 __all__ = ["row_hashes", "Placed", "HASH_BLOCK"]
 

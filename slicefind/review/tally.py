@@ -27,11 +27,11 @@ import numpy as np
 import pandas as pd
 
 from slicefind.exceptions import SlicefindTypeError, SlicefindValueError, check_level, did_you_mean
-from slicefind.queue import Queue, REST
-from slicefind.records import LABEL_SOURCE
+from slicefind.review.queue import Queue, REST
+from slicefind.discovery.records import LABEL_SOURCE
 from slicefind.stats import (cochran_sample_size, stratified_interval, stratified_proportion,
                              wilson_interval_fpc)
-from slicefind.table import restore_formula_text
+from slicefind.discovery.table import restore_formula_text
 
 __all__ = ["Tally", "Combined", "tally", "read_reviews", "normalize_tag", "UNTAGGED",
            "WRONG_LABEL", "TRUE_WORDS", "FALSE_WORDS", "MAX_LISTED", "CATEGORY_COLUMNS",
@@ -246,7 +246,7 @@ class Tally:
         Examples
         --------
         >>> from slicefind.demodata import example_scan
-    >>> from slicefind.queue import build_queue
+    >>> from slicefind.review.queue import build_queue
         >>> queue = build_queue(example_scan(), budget=30, rest=10)
         >>> sheet = queue.table[["row", "stratum"]].copy()
         >>> sheet["reviewed"] = "yes"
@@ -487,7 +487,7 @@ def read_reviews(reviewed, queue: Queue, *, trust_order: bool = False) -> pd.Dat
     Examples
     --------
     >>> from slicefind.demodata import example_scan
-    >>> from slicefind.queue import build_queue
+    >>> from slicefind.review.queue import build_queue
     >>> queue = build_queue(example_scan(), budget=10, rest=2)
     >>> first = int(queue.table["row"][0])
     >>> sheet = pd.DataFrame({"row": [first], "reviewed": ["Yes "], "tags": ["Torn Label; faded ink"]})
@@ -754,7 +754,7 @@ def tally(queue: Queue, reviewed, *, names: Mapping[str, str] | None = None,
     Examples
     --------
     >>> from slicefind.demodata import example_scan
-    >>> from slicefind.queue import build_queue
+    >>> from slicefind.review.queue import build_queue
     >>> queue = build_queue(example_scan(), budget=30, rest=10)
     >>> sheet = queue.table[["row", "stratum"]].copy()
     >>> sheet["reviewed"] = "yes"

@@ -33,7 +33,7 @@ runs where the partition is:
 Dask retries the tasks of a worker that dies, and every task here is a pure function
 of its partition (or of the results of earlier tasks on that partition), so a lost
 worker does not change the result. The seconds each phase took are logged at DEBUG
-level on the ``slicefind.distributed`` logger (and kept in `DaskMined.seconds`).
+level on the ``slicefind.discovery.distributed`` logger (and kept in `DaskMined.seconds`).
 """
 from __future__ import annotations
 
@@ -48,20 +48,21 @@ from typing import Any, Mapping, Sequence
 import numpy as np
 import pandas as pd
 
-from slicefind import bitset
-from slicefind.bitset import numba_kernels
+from slicefind.discovery import bitset
+from slicefind.compiled import numba_kernels
 from slicefind.exceptions import SlicefindTypeError, SlicefindValueError, did_you_mean
-from slicefind.hierarchy import subtree_sums
-from slicefind.items import (CONDITIONAL_ITEMS, Item, ItemBuilder, ItemSet, categorical_items,
-                             code_mask, datetime_masks, numeric_cuts, numeric_masks,
-                             numeric_values)
-from slicefind.placing import Placed, row_hashes
-from slicefind.rules import search_levels
+from slicefind.discovery.hierarchy import subtree_sums
+from slicefind.discovery.items import (CONDITIONAL_ITEMS, Item, ItemBuilder, ItemSet,
+                                       categorical_items, code_mask, datetime_masks, numeric_cuts,
+                                       numeric_masks, numeric_values)
+from slicefind.discovery.placing import Placed, row_hashes
+from slicefind.discovery.rules import search_levels
 from slicefind.stats import fisher_greater
-from slicefind.table import (CATEGORICAL, DATETIME, ERROR_KINDS, EvalTable, MAX_INT_LEVELS,
-                             NUMERIC, check_hashable, column_kind, embedding_columns, labels_equal,
-                             mined_roles, nonfinite_message, nonfinite_rows, positive_class,
-                             vectors_of)
+from slicefind.discovery.table import (CATEGORICAL, DATETIME, ERROR_KINDS, EvalTable,
+                                       MAX_INT_LEVELS, NUMERIC, check_hashable, column_kind,
+                                       embedding_columns, labels_equal, mined_roles,
+                                       nonfinite_message, nonfinite_rows, positive_class,
+                                       vectors_of)
 
 __all__ = ["is_dask_frame", "DaskMined", "DaskRows", "mine_dask", "SAMPLE_ROWS"]
 
@@ -429,7 +430,7 @@ def _count(block: dict, which: str, prefixes, offsets, extensions, engine: str) 
     prefixes, extensions = rows[prefixes], rows[extensions]
     total = np.zeros(len(extensions), dtype=np.int64)
     if engine == "numba":
-        bitset.numba_kernels()
+        numba_kernels()
         _kernel_threads()
     for bits in block["error_bits" if which == "errors" else "bits"]:
         if bits.shape[1]:

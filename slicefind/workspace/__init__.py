@@ -14,6 +14,7 @@ stored without pickle) and `store` (the `Workspace` itself).
 from __future__ import annotations
 
 from slicefind.workspace.schema import DB_NAME, MIGRATIONS, SCHEMA_VERSION
-from slicefind.workspace.store import Workspace, data_fingerprint
+from slicefind.workspace.stamps import data_fingerprint
+from slicefind.workspace.store import Workspace
 
 __all__ = ["Workspace", "data_fingerprint", "DB_NAME", "SCHEMA_VERSION", "MIGRATIONS"]

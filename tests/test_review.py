@@ -16,7 +16,7 @@ import pytest
 
 import slicefind as sf
 from browser import CHROMIUM_ARGS, chromium_or_skip
-from slicefind.page import server as review
+from slicefind.page import common, server as review
 from slicefind.discovery.describe import describe_slice
 from slicefind.review.queue import build_queue
 from slicefind.review.tally import WRONG_LABEL, read_reviews, tally
@@ -155,7 +155,7 @@ def _snapshot(path):
     with Workspace(path, create=False) as ws:
         history = ws.history().to_dict("records")
         names = ws.names()
-        categories = ws.load_artifact(review.CATEGORIES_ARTIFACT, default=None)
+        categories = ws.load_artifact(common.CATEGORIES_ARTIFACT, default=None)
     return history, names, categories
 
 
@@ -179,8 +179,8 @@ def test_state_lists_the_queue_and_the_workspace_tally(server, workspace):
     assert 200 == status
     assert queue.table["row"].tolist() == [r["row"] for r in state["rows"]]
     assert queue.strata["stratum"].tolist() == [s["stratum"] for s in state["strata"]]
-    assert review._records(expected.categories) == state["tally"]["categories"]
-    assert review._records(expected.slices) == state["tally"]["slices"]
+    assert common.records(expected.categories) == state["tally"]["categories"]
+    assert common.records(expected.slices) == state["tally"]["slices"]
     assert "pixels" == state["image_kind"]
 
 
@@ -217,9 +217,9 @@ def test_toggle_is_written_at_once_and_keeps_history(server, workspace):
     _call(server, "POST", "api/review", {"row": row, "toggle": "faded print"})
     with Workspace(workspace, create=False) as ws:
         history = ws.history(row)
-        categories = ws.load_artifact(review.CATEGORIES_ARTIFACT)
+        categories = ws.load_artifact(common.CATEGORIES_ARTIFACT)
     assert ["faded print", "faded print;smeared ink", "smeared ink"] == history["tags"].tolist()
-    assert {review.SOURCE} == set(history["source"])
+    assert {common.SOURCE} == set(history["source"])
     assert ["faded print", "smeared ink"] == categories
 
 
@@ -371,17 +371,17 @@ def test_png_encoder_matches_pillow():
     """Grey floats decode (Pillow 10+) to ink-dark 8-bit values; uint8 colour decodes unchanged."""
     from PIL import Image
 
-    grey = review._png(np.array([[0.0, 8.0], [16.0, 4.0]]), 0.0, 16.0)
+    grey = common.png_bytes(np.array([[0.0, 8.0], [16.0, 4.0]]), 0.0, 16.0)
     colour = np.arange(2 * 3 * 3, dtype=np.uint8).reshape(2, 3, 3) * 10
     assert [[255, 127], [0, 191]] == np.asarray(Image.open(io.BytesIO(grey))).tolist()
-    assert colour.tolist() == np.asarray(Image.open(io.BytesIO(review._png(colour, 0, 255)))).tolist()
+    assert colour.tolist() == np.asarray(Image.open(io.BytesIO(common.png_bytes(colour, 0, 255)))).tolist()
 
 
 def test_image_files_only_from_allowed_folders(tmp_path):
     """Image paths stored in the scan are served only from inside the data folder, never beyond it."""
     data = tmp_path / "depot"
     (data / "crops").mkdir(parents=True)
-    png = review._png(np.eye(4) * 16, 0, 16)
+    png = common.png_bytes(np.eye(4) * 16, 0, 16)
     (data / "crops" / "ok.png").write_bytes(png)
     (tmp_path / "outside.png").write_bytes(png)
     (data / "crops" / "notes.txt").write_text("not an image")

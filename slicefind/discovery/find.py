@@ -383,6 +383,74 @@ def find_slices(
     elif text_model is not None:
         raise SlicefindValueError("text_model= needs text=, the column of text to embed.")
 
+    how = dict(label=label, prediction=prediction, errors=errors, loss=loss, threshold=threshold,
+               error_kind=error_kind, positive=positive, true_class=true_class, id_column=id_column)
+    mined = _mine(data, how, exclude=exclude, embeddings=embeddings, scores=scores, score_cols=score_cols,
+                  term_counts=term_counts, rows_for=rows_for, errors_for=errors_for, engine=engine,
+                  client=client, n_bins=n_bins, max_terms=max_terms, random_state=random_state,
+                  mine_label=mine_label)
+    table, items, counts = mined.table, mined.items, mined.counts
+    min_rows, min_errors = mined.min_rows, mined.min_errors
+    label_check, term_counts = mined.label_check, mined.term_counts
+
+    tested, where, extra_slices, n_clusters, cluster_extra = _candidates(
+        mined, clusters=clusters, cluster_options=cluster_options, random_state=random_state,
+        confidence_level=confidence_level)
+    n_rules = len(where)
+    has_embeddings = table.embeddings is not None or mined.embedding_rows is not None
+
+    p_all, cutoff, folded_into, cluster_folds, eligible = _family_tests(
+        tested, mined, n_rules, extra_slices, n_clusters, fdr=fdr, max_share=max_share)
+
+    table_df, slice_rows, kept, ids = _ranked_table(
+        tested, mined, where, extra_slices, p_all, cutoff, folded_into, cluster_folds, eligible,
+        fdr=fdr, jaccards=(merge_jaccard, distinct_jaccard))
+
+    params = dict(max_terms=max_terms, min_rows=min_rows, min_errors=min_errors, fdr=fdr,
+                  confidence_level=confidence_level, engine=engine, error_kind=error_kind,
+                  n_bins=n_bins, exclude=list(user_exclude), n_items=len(items),
+                  n_tested=len(tested), error_definition=table.error_definition,
+                  clusters=clusters if has_embeddings else "none",
+                  merge_jaccard=merge_jaccard, distinct_jaccard=distinct_jaccard, max_share=max_share,
+                  mine_label=mine_label, label_column=table.columns_used.get("label", "label"),
+                  prediction_column=table.columns_used.get("prediction", "prediction"))
+    if text is not None:
+        params.update(text=text, text_features=bool(text_features),
+                      text_model=None if text_record is None else text_record.model,
+                      text_method="given embeddings" if text_record is None else text_record.method)
+        cluster_extra.update(text=text_record, term_counts=term_counts)
+    if label_check is not None:
+        label_ids = {extra_slices[idx - n_rules].key: sid for idx, sid in zip(kept, ids)
+                     if idx >= n_rules + n_clusters}
+        params["scores"] = list(score_cols) if score_cols else "array"
+        params["label_check"] = params_summary(label_check, label_ids)
+    return FoundSlices(table=table_df, tested=tested, eval_table=table, params=params,
+                       _rows=slice_rows, extras={"items": items, "counts": counts, **cluster_extra})
+
+
+@dataclass(frozen=True)
+class _Mined:
+    """What mining leaves for the sources: the eval table, its items and rule counts."""
+
+    table: EvalTable
+    items: ItemSet
+    counts: RuleCounts
+    rule_bitset: Any                 # rule terms -> the rule's packed rows
+    embedding_rows: Any              # the Dask engine's embedding rows (None in memory)
+    min_rows: int
+    min_errors: int
+    label_check: Any = None
+    term_counts: TermCounts | None = None
+
+
+def _mine(data, how: Mapping[str, Any], *, exclude, embeddings, scores, score_cols, term_counts,
+          rows_for, errors_for, engine, client, n_bins, max_terms, random_state, mine_label) -> _Mined:
+    """Validate the table, build its items and count every rule, in memory or on Dask."""
+    label, prediction, errors, loss, threshold = (how[k] for k in ("label", "prediction", "errors",
+                                                                    "loss", "threshold"))
+    error_kind, positive, true_class, id_column = (how[k] for k in ("error_kind", "positive",
+                                                                     "true_class", "id_column"))
+    label_check = None
     if is_dask_frame(data):
         if engine != "bitset":
             msg = (f"with a Dask DataFrame, engine={engine!r} cannot be used (the Dask engine counts "
@@ -426,6 +494,15 @@ def find_slices(
         def rule_bitset(terms: np.ndarray) -> np.ndarray:
             return rule_bits(items.bits, np.asarray(terms)[None, :])[0]
 
+    return _Mined(table, items, counts, rule_bitset, embedding_rows, min_rows, min_errors,
+                  label_check, term_counts)
+
+
+def _candidates(mined: _Mined, *, clusters, cluster_options, random_state, confidence_level):
+    """Every candidate scored alike: (tested frame, rule positions, other slices, how many of
+    them are clusters, the clusters' and label check's results)."""
+    table, items, counts, min_rows = mined.table, mined.items, mined.counts, mined.min_rows
+    n, k_total, embedding_rows, label_check = table.n_rows, table.n_errors, mined.embedding_rows, mined.label_check
     where, rule_text = _rule_candidates(items, counts)
     n_rules = len(where)
     rule_rows = np.concatenate(counts.n_rows) if n_rules else np.zeros(0, np.int64)
@@ -466,6 +543,15 @@ def find_slices(
         ex_frame.loc[n_clusters:, "p_value"] = [sl.extra["p_value"] for sl in extra_slices[n_clusters:]]
         tested = pd.concat([tested, ex_frame], ignore_index=True)
 
+    return tested, where, extra_slices, n_clusters, cluster_extra
+
+
+def _family_tests(tested, mined: _Mined, n_rules, extra_slices, n_clusters, *, fdr, max_share):
+    """Benjamini–Hochberg over every candidate, then each source's parent tests and folds;
+    writes their columns into `tested`. Returns (p-values, BH cutoff, folded_into,
+    cluster folds, the candidates eligible for the table)."""
+    counts, items, label_check = mined.counts, mined.items, mined.label_check
+    n, k_total = mined.table.n_rows, mined.table.n_errors
     p_all = tested["p_value"].to_numpy()
     q = bh_qvalues(p_all)
     passed = q <= fdr
@@ -512,6 +598,19 @@ def find_slices(
     for node, targets in cluster_folds.items():      # a cluster may fold into several children
         tested.loc[n_rules + node, "folded_into"] = "; ".join(descriptions[n_rules + t] for t in targets)
     eligible = np.flatnonzero(passed & worse & (folded_into < 0) & ~too_large)
+
+    return p_all, cutoff, folded_into, cluster_folds, eligible
+
+
+def _ranked_table(tested, mined: _Mined, where, extra_slices, p_all, cutoff, folded_into, cluster_folds,
+                  eligible, *, fdr, jaccards):
+    """The greedy selection in rank order, the slice ids and the listed table.
+
+    Returns (table, rows per slice id, kept candidate indices, their ids)."""
+    table, items, counts, term_counts = mined.table, mined.items, mined.counts, mined.term_counts
+    n, k_total, rule_bitset, n_rules = table.n_rows, table.n_errors, mined.rule_bitset, len(where)
+    merge_jaccard, distinct_jaccard = jaccards
+    descriptions = tested["description"].tolist()
 
     def bits_of(idx: int) -> np.ndarray:
         if idx < n_rules:
@@ -571,26 +670,7 @@ def find_slices(
     table_df = table_df.astype({"n_rows": np.int64, "n_errors": np.int64, "n_terms": np.int64})
     slice_rows = {sid: table.positions[bitset.to_rows(b, n)] for sid, b in zip(ids, kept_bits)}
 
-    params = dict(max_terms=max_terms, min_rows=min_rows, min_errors=min_errors, fdr=fdr,
-                  confidence_level=confidence_level, engine=engine, error_kind=error_kind,
-                  n_bins=n_bins, exclude=list(user_exclude), n_items=len(items),
-                  n_tested=len(tested), error_definition=table.error_definition,
-                  clusters=clusters if has_embeddings else "none",
-                  merge_jaccard=merge_jaccard, distinct_jaccard=distinct_jaccard, max_share=max_share,
-                  mine_label=mine_label, label_column=table.columns_used.get("label", "label"),
-                  prediction_column=table.columns_used.get("prediction", "prediction"))
-    if text is not None:
-        params.update(text=text, text_features=bool(text_features),
-                      text_model=None if text_record is None else text_record.model,
-                      text_method="given embeddings" if text_record is None else text_record.method)
-        cluster_extra.update(text=text_record, term_counts=term_counts)
-    if label_check is not None:
-        label_ids = {extra_slices[idx - n_rules].key: sid for idx, sid in zip(kept, ids)
-                     if idx >= n_rules + n_clusters}
-        params["scores"] = list(score_cols) if score_cols else "array"
-        params["label_check"] = params_summary(label_check, label_ids)
-    return FoundSlices(table=table_df, tested=tested, eval_table=table, params=params,
-                       _rows=slice_rows, extras={"items": items, "counts": counts, **cluster_extra})
+    return table_df, slice_rows, kept, ids
 
 
 def _with_text(data, text, text_model, text_features, embeddings, random_state, *, dask: bool):

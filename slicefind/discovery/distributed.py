@@ -873,42 +873,8 @@ def mine_dask(data, *, label=None, prediction=None, errors=None, loss=None, thre
     """
     clock = _Clock()
     columns = list(data.columns)
-    if error_kind not in ERROR_KINDS:
-        raise SlicefindValueError(f"error_kind must be one of {ERROR_KINDS}; got {error_kind!r}.")
-    ways = [w for w, v in (("label/prediction", label), ("errors", errors), ("loss", loss)) if v is not None]
-    if len(ways) != 1:
-        raise SlicefindValueError("say which rows are errors in exactly one way: label= and prediction=, "
-                                  f"or errors=, or loss= with threshold=; got {ways or 'none'}.")
-    for name, value in (("label", label), ("prediction", prediction), ("errors", errors), ("loss", loss),
-                        ("id_column", id_column)):
-        if value is None:
-            continue
-        if not isinstance(value, str):
-            raise SlicefindTypeError(f"with a Dask DataFrame, {name}= must be a column name; got "
-                                     f"{type(value).__name__}.")
-        if value not in columns:
-            raise SlicefindValueError(f"{name}={value!r} is not a column of data.{did_you_mean(value, columns)}")
-    for column in exclude:
-        if column not in columns:
-            raise SlicefindValueError(f"exclude names {column!r}, which is not a column of data."
-                                      f"{did_you_mean(column, columns)}")
-    if label is not None:
-        if prediction is None:
-            raise SlicefindValueError("prediction= is required when label= is given.")
-        how = {"kind": "label", "label": label, "prediction": prediction}
-        used = {"label": label, "prediction": prediction}
-        definition = "label != prediction"
-    elif errors is not None:
-        how, used = {"kind": "errors", "errors": errors}, {"errors": errors}
-        definition = f"{errors} is true"
-    else:
-        if threshold is None:
-            raise SlicefindValueError("loss= needs threshold=: a row is an error when its loss is above it.")
-        if isinstance(threshold, bool) or not isinstance(threshold, (int, float, np.number)) \
-                or not np.isfinite(threshold):
-            raise SlicefindValueError(f"threshold must be a finite number; got {threshold!r}.")
-        how, used = {"kind": "loss", "loss": loss, "threshold": float(threshold)}, {"loss": loss}
-        definition = f"{loss} > {threshold:g}"
+    how, used, definition = _error_definition(columns, label, prediction, errors, loss, threshold,
+                                              exclude, id_column, error_kind)
     emb_names = embedding_columns(embeddings, columns)
     filtering = error_kind != "all" or true_class is not None
     if filtering and label is None:
@@ -972,32 +938,8 @@ def mine_dask(data, *, label=None, prediction=None, errors=None, loss=None, thre
     builder = ItemBuilder(np.zeros(0, dtype=bool), min_rows, min_errors)
 
     # column kinds and candidate items, as build_eval_table and build_items decide them
-    kinds, skipped, merged = {}, {}, {}
-    for column in columns:
-        if column in not_mined:
-            skipped[column] = ("excluded" if column in exclude else "id column" if column == id_column
-                               else "embeddings column" if column in emb_names
-                               else f"{next(r for r, c in used.items() if c == column)} column")
-            continue
-        infos = [p["columns"][column] for p in profiles]
-        dtype = infos[0]["dtype"]
-        has_missing = sum(i["missing"] for i in infos) > 0
-        if any(i.get("many") for i in infos):
-            kind, reason = NUMERIC, ""
-        else:
-            uniques, counts, error_counts = (_merge_categories(infos) if "categories" in infos[0]
-                                             else _merge_uniques(infos))
-            merged[column] = (uniques, counts, error_counts,
-                              sum(i["missing"] for i in infos), sum(i["missing_errors"] for i in infos))
-            integral = True
-            if pd.api.types.is_float_dtype(dtype) and len(uniques) <= MAX_INT_LEVELS:
-                values = np.asarray(uniques, dtype=float)
-                integral = bool(np.all(values == np.round(values)))
-            kind, reason = column_kind(dtype, len(uniques), has_missing, integral)
-        if kind is None:
-            skipped[column] = reason
-        else:
-            kinds[column] = kind
+    kinds, skipped, merged = _column_kinds(columns, not_mined, profiles, exclude, id_column,
+                                           emb_names, used)
     mined = tuple(kinds)
 
     spec, cand_items, cand_cols = [], [], []
@@ -1026,46 +968,12 @@ def mine_dask(data, *, label=None, prediction=None, errors=None, loss=None, thre
     clock.mark("item pass")
 
     numeric = [c for c in mined if kinds[c] == NUMERIC]
+    packed_num = None
     if numeric:
-        # numeric cut points from a sample, also inside the worst categorical items' rows
-        worst = []
-        if tree_depth > 0 and builder.items:
-            rows = np.asarray(builder.n_rows)
-            errs = np.asarray(builder.n_errors)
-            excess = errs - rows * k_total / n
-            p = np.atleast_1d(fisher_greater(errs, rows, k_total, n))
-            ranked = [i for i in np.argsort(-excess, kind="stable") if p[i] < 1e-3 and excess[i] > 0]
-            worst = [builder.items[i] for i in ranked[:CONDITIONAL_ITEMS]]
-        read = numeric + [c for c in dict.fromkeys(item.column for item in worst) if c not in numeric]
-        samples = client.gather(client.map(_sample, parts, profiled, range(n_parts), [read] * n_parts,
-                                           [seed] * n_parts, [sample_rows] * n_parts, pure=False))
-        sample = pd.concat(samples, ignore_index=True)
-        sample = sample.sort_values("__key__", kind="stable").head(sample_rows).reset_index(drop=True)
-        sample_errors = sample["__error__"].to_numpy(dtype=bool)
-        within = []
-        for item in worst:
-            one = selection_of.get(id(item))
-            if one is not None:              # (the in-memory engine ranks dates too; see below)
-                within.append(_value_masks(sample, [one])[0])
-            else:
-                within.append(_value_masks(sample, [(item.column, DATETIME, None)])[
-                    _datetime_position(item)])
-        clock.mark("sample pass")
-        numeric_spec = []
-        numeric_items, numeric_cols = [], []
-        sample_min_rows = max(1, int(round(min_rows * len(sample) / n)))
-        for column in numeric:
-            x = numeric_values(sample[column])
-            cuts = numeric_cuts(x, sample_errors, min_rows=sample_min_rows, n_bins=n_bins,
-                                depth=tree_depth, within=within)
-            numeric_spec.append((column, NUMERIC, cuts))
-            listed = [item for item, _ in numeric_masks(column, np.zeros(0), cuts)]
-            numeric_items += listed
-            numeric_cols += [mined.index(column)] * len(listed)
-        packed_num = client.map(_item_bits, parts, profiled, [numeric_spec] * n_parts, pure=False)
-        _add_counted(client, builder, numeric_items, numeric_cols, packed_num, n,
-                     offset=len(cand_items))
-        clock.mark("numeric item pass")
+        packed_num = _numeric_pass(client, builder, parts, profiled, numeric, selection_of, mined,
+                                   n=n, k_total=k_total, min_rows=min_rows, n_bins=n_bins,
+                                   tree_depth=tree_depth, seed=seed, sample_rows=sample_rows,
+                                   offset=len(cand_items), clock=clock)
     del profiled                          # the codes are no longer needed on the workers
     order = np.argsort(np.asarray(builder.cols, dtype=np.int64), kind="stable")
     builder.reorder(order)
@@ -1104,6 +1012,144 @@ def mine_dask(data, *, label=None, prediction=None, errors=None, loss=None, thre
                            count_rows=counter("rows"))
     clock.mark("search")
 
+    table = _gathered_table(client, parts, blocks, block_parts, block_workers, kept, part_rows,
+                            n=n, label=label, prediction=prediction, id_column=id_column,
+                            kinds=kinds, skipped=skipped, definition=definition, used=used)
+    clock.mark("gathering")
+    _log.debug("dask engine, %d partitions, %s rows: %s", n_parts, f"{n:,}",
+               ", ".join(f"{k} {v:.2f} s" for k, v in clock.seconds.items()),
+               extra={"seconds": dict(clock.seconds)})
+    rows = (None if vectors is None else
+            DaskRows(client, vectors, part_rows, blocks, block_parts, block_workers))
+    return DaskMined(table=table, items=items, counts=counts, client=client, blocks=blocks,
+                     block_parts=block_parts, block_workers=block_workers,
+                     part_rows=part_rows, seconds=dict(clock.seconds), embedding_rows=rows)
+
+
+def _error_definition(columns, label, prediction, errors, loss, threshold, exclude, id_column, error_kind):
+    """Which rows are errors, checked against the columns: (how, the role columns, its text)."""
+    if error_kind not in ERROR_KINDS:
+        raise SlicefindValueError(f"error_kind must be one of {ERROR_KINDS}; got {error_kind!r}.")
+    ways = [w for w, v in (("label/prediction", label), ("errors", errors), ("loss", loss)) if v is not None]
+    if len(ways) != 1:
+        raise SlicefindValueError("say which rows are errors in exactly one way: label= and prediction=, "
+                                  f"or errors=, or loss= with threshold=; got {ways or 'none'}.")
+    for name, value in (("label", label), ("prediction", prediction), ("errors", errors), ("loss", loss),
+                        ("id_column", id_column)):
+        if value is None:
+            continue
+        if not isinstance(value, str):
+            raise SlicefindTypeError(f"with a Dask DataFrame, {name}= must be a column name; got "
+                                     f"{type(value).__name__}.")
+        if value not in columns:
+            raise SlicefindValueError(f"{name}={value!r} is not a column of data.{did_you_mean(value, columns)}")
+    for column in exclude:
+        if column not in columns:
+            raise SlicefindValueError(f"exclude names {column!r}, which is not a column of data."
+                                      f"{did_you_mean(column, columns)}")
+    if label is not None:
+        if prediction is None:
+            raise SlicefindValueError("prediction= is required when label= is given.")
+        how = {"kind": "label", "label": label, "prediction": prediction}
+        used = {"label": label, "prediction": prediction}
+        definition = "label != prediction"
+    elif errors is not None:
+        how, used = {"kind": "errors", "errors": errors}, {"errors": errors}
+        definition = f"{errors} is true"
+    else:
+        if threshold is None:
+            raise SlicefindValueError("loss= needs threshold=: a row is an error when its loss is above it.")
+        if isinstance(threshold, bool) or not isinstance(threshold, (int, float, np.number)) \
+                or not np.isfinite(threshold):
+            raise SlicefindValueError(f"threshold must be a finite number; got {threshold!r}.")
+        how, used = {"kind": "loss", "loss": loss, "threshold": float(threshold)}, {"loss": loss}
+        definition = f"{loss} > {threshold:g}"
+    return how, used, definition
+
+
+def _column_kinds(columns, not_mined, profiles, exclude, id_column, emb_names, used):
+    """Each column's kind from the merged partition profiles, as build_eval_table decides it:
+    (kinds, why each other column is skipped, the merged value counts of the non-numeric ones)."""
+    # column kinds and candidate items, as build_eval_table and build_items decide them
+    kinds, skipped, merged = {}, {}, {}
+    for column in columns:
+        if column in not_mined:
+            skipped[column] = ("excluded" if column in exclude else "id column" if column == id_column
+                               else "embeddings column" if column in emb_names
+                               else f"{next(r for r, c in used.items() if c == column)} column")
+            continue
+        infos = [p["columns"][column] for p in profiles]
+        dtype = infos[0]["dtype"]
+        has_missing = sum(i["missing"] for i in infos) > 0
+        if any(i.get("many") for i in infos):
+            kind, reason = NUMERIC, ""
+        else:
+            uniques, counts, error_counts = (_merge_categories(infos) if "categories" in infos[0]
+                                             else _merge_uniques(infos))
+            merged[column] = (uniques, counts, error_counts,
+                              sum(i["missing"] for i in infos), sum(i["missing_errors"] for i in infos))
+            integral = True
+            if pd.api.types.is_float_dtype(dtype) and len(uniques) <= MAX_INT_LEVELS:
+                values = np.asarray(uniques, dtype=float)
+                integral = bool(np.all(values == np.round(values)))
+            kind, reason = column_kind(dtype, len(uniques), has_missing, integral)
+        if kind is None:
+            skipped[column] = reason
+        else:
+            kinds[column] = kind
+    return kinds, skipped, merged
+
+
+def _numeric_pass(client, builder, parts, profiled, numeric, selection_of, mined, *, n, k_total, min_rows,
+                  n_bins, tree_depth, seed, sample_rows, offset, clock):
+    """Numeric cut points fitted on a sample (also inside the worst categorical items' rows),
+    their items counted on the workers into `builder`; returns the packed item bits."""
+    n_parts = len(parts)
+    # numeric cut points from a sample, also inside the worst categorical items' rows
+    worst = []
+    if tree_depth > 0 and builder.items:
+        rows = np.asarray(builder.n_rows)
+        errs = np.asarray(builder.n_errors)
+        excess = errs - rows * k_total / n
+        p = np.atleast_1d(fisher_greater(errs, rows, k_total, n))
+        ranked = [i for i in np.argsort(-excess, kind="stable") if p[i] < 1e-3 and excess[i] > 0]
+        worst = [builder.items[i] for i in ranked[:CONDITIONAL_ITEMS]]
+    read = numeric + [c for c in dict.fromkeys(item.column for item in worst) if c not in numeric]
+    samples = client.gather(client.map(_sample, parts, profiled, range(n_parts), [read] * n_parts,
+                                       [seed] * n_parts, [sample_rows] * n_parts, pure=False))
+    sample = pd.concat(samples, ignore_index=True)
+    sample = sample.sort_values("__key__", kind="stable").head(sample_rows).reset_index(drop=True)
+    sample_errors = sample["__error__"].to_numpy(dtype=bool)
+    within = []
+    for item in worst:
+        one = selection_of.get(id(item))
+        if one is not None:              # (the in-memory engine ranks dates too; see below)
+            within.append(_value_masks(sample, [one])[0])
+        else:
+            within.append(_value_masks(sample, [(item.column, DATETIME, None)])[
+                _datetime_position(item)])
+    clock.mark("sample pass")
+    numeric_spec = []
+    numeric_items, numeric_cols = [], []
+    sample_min_rows = max(1, int(round(min_rows * len(sample) / n)))
+    for column in numeric:
+        x = numeric_values(sample[column])
+        cuts = numeric_cuts(x, sample_errors, min_rows=sample_min_rows, n_bins=n_bins,
+                            depth=tree_depth, within=within)
+        numeric_spec.append((column, NUMERIC, cuts))
+        listed = [item for item, _ in numeric_masks(column, np.zeros(0), cuts)]
+        numeric_items += listed
+        numeric_cols += [mined.index(column)] * len(listed)
+    packed_num = client.map(_item_bits, parts, profiled, [numeric_spec] * n_parts, pure=False)
+    _add_counted(client, builder, numeric_items, numeric_cols, packed_num, n, offset=offset)
+    clock.mark("numeric item pass")
+    return packed_num
+
+
+def _gathered_table(client, parts, blocks, block_parts, block_workers, kept, part_rows, *, n, label,
+                    prediction, id_column, kinds, skipped, definition, used) -> EvalTable:
+    """The driver's EvalTable: error flags, positions, labels, predictions and ids gathered."""
+    n_parts = len(parts)
     error_pieces = _in_partition_order(_on_blocks(client, blocks, block_workers, _block_errors),
                                        block_parts)
     error_flags = bitset.unpack(_join_packed(error_pieces, part_rows), n)[0]
@@ -1126,15 +1172,7 @@ def mine_dask(data, *, label=None, prediction=None, errors=None, loss=None, thre
                       n_input_rows=n_input, kinds=kinds, skipped=skipped, label=gathered.get("label"),
                       prediction=gathered.get("prediction"), embeddings=None, id_column=id_column,
                       error_definition=definition, columns_used=used)
-    clock.mark("gathering")
-    _log.debug("dask engine, %d partitions, %s rows: %s", n_parts, f"{n:,}",
-               ", ".join(f"{k} {v:.2f} s" for k, v in clock.seconds.items()),
-               extra={"seconds": dict(clock.seconds)})
-    rows = (None if vectors is None else
-            DaskRows(client, vectors, part_rows, blocks, block_parts, block_workers))
-    return DaskMined(table=table, items=items, counts=counts, client=client, blocks=blocks,
-                     block_parts=block_parts, block_workers=block_workers,
-                     part_rows=part_rows, seconds=dict(clock.seconds), embedding_rows=rows)
+    return table
 
 
 def _datetime_position(item: Item) -> int:

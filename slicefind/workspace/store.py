@@ -1,4 +1,7 @@
-"""The `Workspace`: opening the folder, its database connection and transactions; the rest comes from the mixins."""
+"""The `Workspace`: the folder, its database connection and transactions.
+
+What it stores and reads comes from the mixins (scans, artifacts, queues, reviews, sheets, names).
+"""
 from __future__ import annotations
 
 import os

@@ -761,32 +761,9 @@ def cluster_slices(
     lap("map")
 
     n_fit = fit.size
-    err_f = err_any[fit]
-    labels_f: dict[str, np.ndarray] = {}
-    trees: dict[str, Tree] = {}
-    sizes: dict[str, int] = {}
-    if _wanted("region", strategy):
-        # regions are clustered on a part of the fit in which errors are as common as in
-        # the whole table (the sample over-represents them); the other fitted rows join
-        # by nearest neighbours in the layout
-        even = _even_part(err_f, float(err_any.mean()), rng) if sampled else np.arange(n_fit)
-        mcs = min_cluster_size or default_min_cluster_size(even.size, share=0.005, floor=15)
-        region_f = np.full(n_fit, ROOT, dtype=np.int64)
-        region_f[even], trees["region"] = _hdbscan(coords_f[even], mcs, min_samples or min(10, mcs))
-        if even.size < n_fit:
-            others = np.setdiff1d(np.arange(n_fit), even, assume_unique=True)
-            (region_f[others],), _ = _assign(coords_f, even, others, [(region_f[even], trees["region"])],
-                                             [], n_neighbors, progress=False)
-        labels_f["region"] = region_f
-        sizes["region"] = mcs
-    lap("hdbscan_regions")
-    if _wanted("error_mode", strategy):
-        n_err_f = int(err_f.sum())
-        mcs_e = min_error_cluster_size or default_min_cluster_size(n_err_f, share=0.02, floor=8)
-        modes, trees["error_mode"] = _hdbscan(coords_f[err_f], mcs_e, min_samples or min(10, mcs_e))
-        labels_f["error_mode"] = _extend_modes(coords_f, err_f, modes, trees["error_mode"], n_vote=5)
-        sizes["error_mode"] = mcs_e
-    lap("hdbscan_error_modes")
+    labels_f, trees, sizes = _cluster_fit(coords_f, err_any[fit], float(err_any.mean()), sampled, strategy,
+                                          min_cluster_size, min_error_cluster_size, min_samples,
+                                          n_neighbors, rng, lap)
 
     # every row: copies of fitted rows directly, the others by their nearest fitted rows
     fitted = Fitted(mean=mean, axes=axes, metric=metric, n_neighbors=n_neighbors, vectors=xf,
@@ -810,6 +787,39 @@ def cluster_slices(
         noise_share={k: float(np.mean(v == NOISE)) for k, v in labels.items()})
     return ClusterResult(slices=tuple(slices), labels=labels, map_xy=map_xy, coords=coords,
                          diagnostics=diagnostics, params=params, nodes=nodes, trees=trees)
+
+
+def _cluster_fit(coords_f, err_f, error_rate, sampled, strategy, min_cluster_size, min_error_cluster_size,
+                 min_samples, n_neighbors, rng, lap):
+    """HDBSCAN on the fitted rows' layout: (deepest tree node per fitted row, trees, and the
+    min_cluster_size used, each by kind "region" / "error_mode")."""
+    n_fit = err_f.size
+    labels_f: dict[str, np.ndarray] = {}
+    trees: dict[str, Tree] = {}
+    sizes: dict[str, int] = {}
+    if _wanted("region", strategy):
+        # regions are clustered on a part of the fit in which errors are as common as in
+        # the whole table (the sample over-represents them); the other fitted rows join
+        # by nearest neighbours in the layout
+        even = _even_part(err_f, error_rate, rng) if sampled else np.arange(n_fit)
+        mcs = min_cluster_size or default_min_cluster_size(even.size, share=0.005, floor=15)
+        region_f = np.full(n_fit, ROOT, dtype=np.int64)
+        region_f[even], trees["region"] = _hdbscan(coords_f[even], mcs, min_samples or min(10, mcs))
+        if even.size < n_fit:
+            others = np.setdiff1d(np.arange(n_fit), even, assume_unique=True)
+            (region_f[others],), _ = _assign(coords_f, even, others, [(region_f[even], trees["region"])],
+                                             [], n_neighbors, progress=False)
+        labels_f["region"] = region_f
+        sizes["region"] = mcs
+    lap("hdbscan_regions")
+    if _wanted("error_mode", strategy):
+        n_err_f = int(err_f.sum())
+        mcs_e = min_error_cluster_size or default_min_cluster_size(n_err_f, share=0.02, floor=8)
+        modes, trees["error_mode"] = _hdbscan(coords_f[err_f], mcs_e, min_samples or min(10, mcs_e))
+        labels_f["error_mode"] = _extend_modes(coords_f, err_f, modes, trees["error_mode"], n_vote=5)
+        sizes["error_mode"] = mcs_e
+    lap("hdbscan_error_modes")
+    return labels_f, trees, sizes
 
 
 def _tree_slices(table: EvalTable, nodes: Mapping[str, np.ndarray], trees: Mapping[str, Tree], items,

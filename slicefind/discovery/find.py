@@ -26,8 +26,7 @@ from slicefind.discovery.rules import (ENGINES, RuleCounts, fold_into_refinement
                                        refinement_pvalues, rule_bits, search_rules)
 from slicefind.stats import SCORE_COLUMNS, bh_qvalues, fisher_greater, score_slices
 from slicefind.discovery.table import EvalTable, build_eval_table
-from slicefind.discovery.text import (TermCounts, check_texts, embed_column,
-                                      text_features as surface_features)
+from slicefind.discovery.text import TermCounts, check_texts, embed_column, surface_features
 
 __all__ = ["FoundSlices", "find_slices", "TABLE_COLUMNS"]
 
@@ -446,21 +445,14 @@ class _Mined:
 def _mine(data, how: Mapping[str, Any], *, exclude, embeddings, scores, score_cols, term_counts,
           rows_for, errors_for, engine, client, n_bins, max_terms, random_state, mine_label) -> _Mined:
     """Validate the table, build its items and count every rule, in memory or on Dask."""
-    label, prediction, errors, loss, threshold = (how[k] for k in ("label", "prediction", "errors",
-                                                                    "loss", "threshold"))
-    error_kind, positive, true_class, id_column = (how[k] for k in ("error_kind", "positive",
-                                                                     "true_class", "id_column"))
     label_check = None
     if is_dask_frame(data):
         if engine != "bitset":
             msg = (f"with a Dask DataFrame, engine={engine!r} cannot be used (the Dask engine counts "
                    "with the bitset kernel); leave engine at its default.")
             raise SlicefindValueError(msg)
-        mined = mine_dask(data, label=label, prediction=prediction, errors=errors, loss=loss,
-                          threshold=threshold, id_column=id_column, client=client,
-                          exclude=exclude,
-                          error_kind=error_kind, positive=positive,
-                          true_class=true_class, embeddings=embeddings, min_rows_for=rows_for,
+        mined = mine_dask(data, **how, client=client, exclude=exclude, embeddings=embeddings,
+                          min_rows_for=rows_for,
                           min_errors_for=errors_for, n_bins=n_bins, max_terms=max_terms,
                           random_state=random_state, mine_label=mine_label)
         table, items, counts = mined.table, mined.items, mined.counts
@@ -470,10 +462,7 @@ def _mine(data, how: Mapping[str, Any], *, exclude, embeddings, scores, score_co
         embedding_rows = mined.embedding_rows
     else:
         embedding_rows = None
-        table = build_eval_table(data, label=label, prediction=prediction, errors=errors, loss=loss,
-                                 threshold=threshold, embeddings=embeddings, exclude=exclude,
-                                 error_kind=error_kind, positive=positive, true_class=true_class,
-                                 id_column=id_column, mine_label=mine_label)
+        table = build_eval_table(data, **how, embeddings=embeddings, exclude=exclude, mine_label=mine_label)
         n, k_total = table.n_rows, table.n_errors
         min_rows, min_errors = rows_for(n), errors_for(n, k_total, rows_for(n))
         if term_counts is not None and term_counts.n_rows != n:

@@ -30,9 +30,9 @@ import pandas as pd
 
 from slicefind.exceptions import SlicefindTypeError, SlicefindValueError, did_you_mean
 
-__all__ = ["embed_texts", "embed_column", "text_features", "check_texts", "mark_terms", "TermCounts",
-           "class_tfidf", "TextEmbedding", "TEXT_FEATURES", "TOKEN_PATTERN", "DEFAULT_COMPONENTS",
-           "lsa_settings"]
+__all__ = ["embed_texts", "embed_column", "text_features", "surface_features", "check_texts", "mark_terms",
+           "TermCounts", "class_tfidf", "TextEmbedding", "TEXT_FEATURES", "TOKEN_PATTERN",
+           "DEFAULT_COMPONENTS", "lsa_settings"]
 
 #: how words are cut, for the TF-IDF and the distinctive terms alike (scikit-learn's default)
 TOKEN_PATTERN = r"(?u)\b\w\w+\b"
@@ -127,7 +127,11 @@ def text_features(texts, *, prefix: str = "text") -> pd.DataFrame:
     >>> text_features(["Order 42 LOST", "see https://example.org"], prefix="m")["m.tokens"].tolist()
     [3, 4]
     """
-    values = _as_texts(texts, "texts")
+    return surface_features(_as_texts(texts, "texts"), prefix=prefix)
+
+
+def surface_features(values: np.ndarray, *, prefix: str) -> pd.DataFrame:
+    """`text_features` of texts already checked (`check_texts`: an object array of str)."""
     series = pd.Series(values, dtype=object)
     counts = _char_counts(values.tolist())
     solid, digits, letters, upper, foreign, breaks = (counts[:, j] for j in range(6))

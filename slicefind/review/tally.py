@@ -246,7 +246,7 @@ class Tally:
         Examples
         --------
         >>> from slicefind.demodata import example_scan
-    >>> from slicefind.review.queue import build_queue
+        >>> from slicefind.review.queue import build_queue
         >>> queue = build_queue(example_scan(), budget=30, rest=10)
         >>> sheet = queue.table[["row", "stratum"]].copy()
         >>> sheet["reviewed"] = "yes"
